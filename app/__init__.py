@@ -1,0 +1,1 @@
+"""Quietlayer dashboard and command line (no numerics here: see quietlayer.engine)."""

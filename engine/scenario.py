@@ -1,0 +1,533 @@
+"""The problem as data: a validated, immutable description of one 2D run.
+
+Coordinates: x to the right, y up.  Positions of sources, probes and material
+blocks are given in cells of the interior, whose nodes run 0..nx and 0..ny;
+layers are added outside the interior, so the interior is the same whatever
+the layer.  Every invalid value raises ScenarioError naming the field.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+import warnings
+from dataclasses import asdict, dataclass, field, fields, replace
+from typing import Any
+
+import tomli_w
+
+from .errors import ResolutionWarning, ScenarioError
+from .units import C0, parse_frequency, parse_length
+from .waveforms import WAVEFORMS, Pulse, design_pulse
+
+POLARIZATIONS = ("TMz", "TEz")
+PRECISIONS = ("float32", "float64")
+SIDE_KINDS = ("cpml", "wall", "periodic")
+SIDES = ("left", "right", "bottom", "top")
+LINE_AXES = ("", "x", "y")
+MAX_GRID_NODES = 64_000_000  # about 1 GB of float32 fields and coefficients
+MAX_STEPS = 2_000_000
+MIN_CELLS_PER_WAVELENGTH = 10  # common practice, no source
+
+
+# --- small validators -------------------------------------------------------
+
+def _number(name: str, value, lo: float = -math.inf, hi: float = math.inf,
+            lo_open: bool = False, hi_open: bool = False, allow_inf: bool = False) -> float:
+    lo_sign = ">" if lo_open else ">="
+    hi_sign = "<" if hi_open else "<="
+    parts = []
+    if lo > -math.inf:
+        parts.append(f"{lo_sign} {lo:g}")
+    if hi < math.inf:
+        parts.append(f"{hi_sign} {hi:g}")
+    allowed = "a number " + " and ".join(parts) if parts else "a number"
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ScenarioError(name, value, allowed)
+    v = float(value)
+    if math.isnan(v) or (math.isinf(v) and not allow_inf):
+        raise ScenarioError(name, value, allowed + " (finite)")
+    if (v < lo) or (v > hi) or (lo_open and v == lo) or (hi_open and v == hi):
+        raise ScenarioError(name, value, allowed)
+    return v
+
+
+def _integer(name: str, value, lo: int, hi: int) -> int:
+    allowed = f"a whole number from {lo} to {hi}"
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ScenarioError(name, value, allowed)
+    if isinstance(value, float) and not (math.isfinite(value) and value.is_integer()):
+        raise ScenarioError(name, value, allowed)
+    v = int(value)
+    if not lo <= v <= hi:
+        raise ScenarioError(name, value, allowed)
+    return v
+
+
+def _choice(name: str, value, choices) -> str:
+    if value not in choices:
+        shown = ", ".join(repr(c) for c in choices)
+        raise ScenarioError(name, value, f"one of {shown}")
+    return value
+
+
+def _set(obj, name: str, value) -> None:
+    object.__setattr__(obj, name, value)
+
+
+def _check_keys(name: str, data: dict, allowed) -> None:
+    if not isinstance(data, dict):
+        raise ScenarioError(name, data, "a table of keys")
+    for key in data:
+        if key not in allowed:
+            raise ScenarioError(f"{name}.{key}" if name else key, data[key],
+                                f"a known key ({', '.join(sorted(allowed))})")
+
+
+# --- parts ------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Source:
+    """A soft current source: a z-directed line current (TMz) or its dual
+    magnetic current (TEz), with the pulse designed from f_min..f_max.
+
+    x, y: interior node; line: "" for a point, "y" for a column filling all y
+    at x (a plane wave when bottom/top are periodic), "x" for a row at y.
+    amplitude: current in A (TMz); in TEz the magnetic current is eta0 times it
+    in V, which makes the two polarizations exact duals.
+    """
+
+    x: int
+    y: int
+    f_max: float
+    f_min: float = 0.0
+    waveform: str = "diff_gaussian"
+    amplitude: float = 1.0
+    line: str = ""
+
+    def __post_init__(self):
+        _set(self, "x", _integer("source.x", self.x, 0, 1_000_000))
+        _set(self, "y", _integer("source.y", self.y, 0, 1_000_000))
+        _set(self, "f_max", parse_frequency("source.f_max", self.f_max))
+        _set(self, "f_min", parse_frequency("source.f_min", self.f_min))
+        _choice("source.waveform", self.waveform, WAVEFORMS)
+        _set(self, "amplitude", _number("source.amplitude", self.amplitude, 0.0, 1e12, lo_open=True))
+        _choice("source.line", self.line, LINE_AXES)
+        design_pulse(self.waveform, self.f_min, self.f_max)  # validates the band
+
+    @property
+    def pulse(self) -> Pulse:
+        return design_pulse(self.waveform, self.f_min, self.f_max)
+
+
+@dataclass(frozen=True)
+class Probe:
+    """A named interior node where the field is recorded every step."""
+
+    name: str
+    x: int
+    y: int
+
+    def __post_init__(self):
+        if not isinstance(self.name, str) or not self.name.strip():
+            raise ScenarioError("probe.name", self.name, "a non-empty text")
+        _set(self, "x", _integer(f"probe[{self.name}].x", self.x, 0, 1_000_000))
+        _set(self, "y", _integer(f"probe[{self.name}].y", self.y, 0, 1_000_000))
+
+
+@dataclass(frozen=True)
+class Block:
+    """A rectangle of other material, in interior cell units.
+
+    Edges may lie outside the interior, or at +-inf, so that a substrate or a
+    guide runs on through the layer to the outer wall.  Later blocks are
+    painted over earlier ones; cells cut by an edge get the area-weighted mean.
+    """
+
+    x0: float
+    x1: float
+    y0: float
+    y1: float
+    eps_r: float = 1.0
+    sigma: float = 0.0
+    name: str = ""
+
+    def __post_init__(self):
+        label = f"block[{self.name}]" if self.name else "block"
+        for key in ("x0", "x1", "y0", "y1"):
+            _set(self, key, _number(f"{label}.{key}", getattr(self, key), allow_inf=True))
+        if not self.x0 < self.x1:
+            raise ScenarioError(f"{label}.x1", self.x1, f"> x0 = {self.x0:g}")
+        if not self.y0 < self.y1:
+            raise ScenarioError(f"{label}.y1", self.y1, f"> y0 = {self.y0:g}")
+        _set(self, "eps_r", _number(f"{label}.eps_r", self.eps_r, 1.0, 1e4))
+        _set(self, "sigma", _number(f"{label}.sigma", self.sigma, 0.0, 1e8))
+        if not isinstance(self.name, str):
+            raise ScenarioError(f"{label}.name", self.name, "a text")
+
+
+@dataclass(frozen=True)
+class Profile:
+    """A layer profile from the user's own code: sigma (S/m), kappa, alpha (S/m)
+    tabulated against depth (m) from the inner face (0) to the wall; the engine
+    interpolates linearly at the exact node positions."""
+
+    depth: tuple
+    sigma: tuple
+    kappa: tuple
+    alpha: tuple
+
+    def __post_init__(self):
+        columns = {}
+        for key in ("depth", "sigma", "kappa", "alpha"):
+            raw = getattr(self, key)
+            try:
+                values = tuple(float(v) for v in raw)
+            except (TypeError, ValueError):
+                raise ScenarioError(f"profile.{key}", raw, "a list of numbers") from None
+            if any(not math.isfinite(v) for v in values):
+                raise ScenarioError(f"profile.{key}", raw, "finite numbers only")
+            columns[key] = values
+            _set(self, key, values)
+        n = len(columns["depth"])
+        if n < 2:
+            raise ScenarioError("profile.depth", self.depth, "at least 2 rows")
+        for key in ("sigma", "kappa", "alpha"):
+            if len(columns[key]) != n:
+                raise ScenarioError(f"profile.{key}", len(columns[key]), f"{n} rows, as many as depth")
+        d = columns["depth"]
+        if any(b <= a for a, b in zip(d, d[1:])):
+            raise ScenarioError("profile.depth", self.depth, "strictly increasing depths")
+        if d[0] > 0.0:
+            raise ScenarioError("profile.depth", d[0], "a first depth <= 0 m (the inner face)")
+        if min(columns["sigma"]) < 0:
+            raise ScenarioError("profile.sigma", min(columns["sigma"]), "values >= 0 S/m")
+        if min(columns["kappa"]) < 1:
+            raise ScenarioError("profile.kappa", min(columns["kappa"]), "values >= 1")
+        if min(columns["alpha"]) < 0:
+            raise ScenarioError("profile.alpha", min(columns["alpha"]), "values >= 0 S/m")
+
+
+@dataclass(frozen=True)
+class Side:
+    """What terminates one side of the grid.
+
+    kind "cpml": a CFS-CPML of `cells` cells backed by a wall; sigma_max in S/m
+    or sigma_ratio times sigma_opt (give one; the ratio 1.0 is the default);
+    grading order m = `order`; kappa_max >= 1; alpha_max in S/m, largest at the
+    inner face, graded with `alpha_order`; or a `profile` of your own.
+    kind "wall": the outermost Ez (TMz) or Hz (TEz) nodes are held at zero: an
+    electric wall in TMz, a magnetic wall in TEz; either reflects totally.
+    kind "periodic": wraps to the opposite side, which must be periodic too.
+    """
+
+    kind: str = "cpml"
+    cells: int = 10
+    order: float = 3.0
+    sigma_ratio: float | None = None
+    sigma_max: float | None = None
+    kappa_max: float = 1.0
+    alpha_max: float = 0.0
+    alpha_order: float = 1.0
+    profile: Profile | None = None
+    label: str = field(default="layer", compare=False, repr=False)
+
+    def __post_init__(self):
+        p = self.label
+        _choice(f"{p}.kind", self.kind, SIDE_KINDS)
+        _set(self, "cells", _integer(f"{p}.cells", self.cells, 1, 500))
+        _set(self, "order", _number(f"{p}.order", self.order, 0.0, 20.0, lo_open=True))
+        if self.sigma_ratio is not None and self.sigma_max is not None:
+            raise ScenarioError(f"{p}.sigma_max", self.sigma_max,
+                                "absent when sigma_ratio is given (give one of the two)")
+        if self.sigma_ratio is not None:
+            _set(self, "sigma_ratio", _number(f"{p}.sigma_ratio", self.sigma_ratio, 0.0, 1000.0))
+        if self.sigma_max is not None:
+            _set(self, "sigma_max", _number(f"{p}.sigma_max", self.sigma_max, 0.0, 1e12))
+        if self.sigma_ratio is None and self.sigma_max is None:
+            _set(self, "sigma_ratio", 1.0)
+        _set(self, "kappa_max", _number(f"{p}.kappa_max", self.kappa_max, 1.0, 1000.0))
+        _set(self, "alpha_max", _number(f"{p}.alpha_max", self.alpha_max, 0.0, 1e6))
+        _set(self, "alpha_order", _number(f"{p}.alpha_order", self.alpha_order, 0.0, 20.0))
+        if self.profile is not None and not isinstance(self.profile, Profile):
+            raise ScenarioError(f"{p}.profile", self.profile, "a Profile table")
+
+    @property
+    def layer_cells(self) -> int:
+        """Cells this side adds to the grid (0 unless it is a CPML)."""
+        return self.cells if self.kind == "cpml" else 0
+
+
+@dataclass(frozen=True)
+class Boundary:
+    """The four sides: left (x low), right (x high), bottom (y low), top (y high)."""
+
+    left: Side = Side()
+    right: Side = Side()
+    bottom: Side = Side()
+    top: Side = Side()
+
+    def __post_init__(self):
+        for name in SIDES:
+            side = getattr(self, name)
+            if not isinstance(side, Side):
+                raise ScenarioError(f"layer.{name}", side, "a Side")
+            if side.label != f"layer.{name}":
+                _set(self, name, replace(side, label=f"layer.{name}"))
+        for a, b in (("left", "right"), ("bottom", "top")):
+            pa, pb = getattr(self, a).kind == "periodic", getattr(self, b).kind == "periodic"
+            if pa != pb:
+                raise ScenarioError(f"layer.{b}.kind", getattr(self, b).kind,
+                                    f"'periodic' exactly when layer.{a}.kind is 'periodic'")
+
+    @classmethod
+    def all_sides(cls, side: Side) -> "Boundary":
+        return cls(left=side, right=side, bottom=side, top=side)
+
+    @property
+    def periodic_x(self) -> bool:
+        return self.left.kind == "periodic"
+
+    @property
+    def periodic_y(self) -> bool:
+        return self.bottom.kind == "periodic"
+
+
+# --- the scenario -----------------------------------------------------------
+
+@dataclass(frozen=True)
+class Scenario:
+    """One 2D FDTD problem and the boundary that terminates it.
+
+    dx, dy: cell size (m, or text such as '0.5 mm'); nx, ny: interior cells;
+    courant: time step as a fraction of the 2D stability limit (0 < c <= 1);
+    eps_r, sigma: host medium; steps: run length.
+    """
+
+    dx: float
+    dy: float
+    nx: int
+    ny: int
+    source: Source
+    steps: int = 1000
+    courant: float = 0.99
+    eps_r: float = 1.0
+    sigma: float = 0.0
+    polarization: str = "TMz"
+    precision: str = "float32"
+    probes: tuple = ()
+    blocks: tuple = ()
+    boundary: Boundary = Boundary()
+    title: str = field(default="", compare=False)
+
+    def __post_init__(self):
+        _set(self, "dx", parse_length("dx", self.dx))
+        _set(self, "dy", parse_length("dy", self.dy))
+        for key in ("dx", "dy"):
+            _number(key, getattr(self, key), 1e-12, 1e3, lo_open=False)
+        _set(self, "nx", _integer("nx", self.nx, 2, 20_000))
+        _set(self, "ny", _integer("ny", self.ny, 2, 20_000))
+        _set(self, "steps", _integer("steps", self.steps, 1, MAX_STEPS))
+        _set(self, "courant", _number("courant", self.courant, 0.0, 1.0, lo_open=True))
+        _set(self, "eps_r", _number("eps_r", self.eps_r, 1.0, 1e4))
+        _set(self, "sigma", _number("sigma", self.sigma, 0.0, 1e8))
+        _choice("polarization", self.polarization, POLARIZATIONS)
+        _choice("precision", self.precision, PRECISIONS)
+        if not isinstance(self.source, Source):
+            raise ScenarioError("source", self.source, "a Source")
+        if not isinstance(self.boundary, Boundary):
+            raise ScenarioError("layer", self.boundary, "a Boundary")
+        _set(self, "probes", tuple(self.probes))
+        _set(self, "blocks", tuple(self.blocks))
+        for b in self.blocks:
+            if not isinstance(b, Block):
+                raise ScenarioError("blocks", b, "Block entries")
+        names = set()
+        for p in self.probes:
+            if not isinstance(p, Probe):
+                raise ScenarioError("probes", p, "Probe entries")
+            if p.name in names:
+                raise ScenarioError("probe.name", p.name, "a name used by one probe only")
+            names.add(p.name)
+            self._check_inside(f"probe[{p.name}]", p.x, p.y)
+        self._check_inside("source", self.source.x, self.source.y)
+        nodes = (self.total_cells_x + 1) * (self.total_cells_y + 1)
+        if nodes > MAX_GRID_NODES:
+            raise ScenarioError("nx", self.nx, f"a grid of at most {MAX_GRID_NODES:,} nodes "
+                                f"with its layers (this one has {nodes:,})")
+        for name in SIDES:
+            side = getattr(self.boundary, name)
+            if side.profile is not None:
+                depth = side.cells * (self.dx if name in ("left", "right") else self.dy)
+                if side.profile.depth[-1] < depth * (1 - 1e-9):
+                    raise ScenarioError(f"layer.{name}.profile.depth", side.profile.depth[-1],
+                                        f"a last depth >= the layer thickness {depth:g} m")
+        cpw = self.cells_per_wavelength
+        if cpw < MIN_CELLS_PER_WAVELENGTH:
+            warnings.warn(f"only {cpw:.1f} cells per wavelength at f_max = {self.source.f_max:g} Hz "
+                          f"(at least {MIN_CELLS_PER_WAVELENGTH} recommended): numerical dispersion "
+                          "will dominate", ResolutionWarning, stacklevel=3)
+
+    def _check_inside(self, name: str, x: int, y: int) -> None:
+        if not 0 <= x <= self.nx:
+            raise ScenarioError(f"{name}.x", x, f"an interior node 0..{self.nx}")
+        if not 0 <= y <= self.ny:
+            raise ScenarioError(f"{name}.y", y, f"an interior node 0..{self.ny}")
+
+    # derived quantities
+    @property
+    def dt(self) -> float:
+        """Time step, s: courant x the 2D limit 1 / (c0 sqrt(1/dx^2 + 1/dy^2))."""
+        return self.courant / (C0 * math.sqrt(1.0 / self.dx**2 + 1.0 / self.dy**2))
+
+    @property
+    def max_eps_r(self) -> float:
+        return max([self.eps_r] + [b.eps_r for b in self.blocks])
+
+    @property
+    def cells_per_wavelength(self) -> float:
+        """Cells per shortest wavelength at f_max, in the densest material."""
+        wavelength = C0 / (self.source.f_max * math.sqrt(self.max_eps_r))
+        return wavelength / max(self.dx, self.dy)
+
+    @property
+    def total_cells_x(self) -> int:
+        return self.nx + self.boundary.left.layer_cells + self.boundary.right.layer_cells
+
+    @property
+    def total_cells_y(self) -> int:
+        return self.ny + self.boundary.bottom.layer_cells + self.boundary.top.layer_cells
+
+    @property
+    def offset(self) -> tuple[int, int]:
+        """Grid node of the interior node (0, 0)."""
+        return self.boundary.left.layer_cells, self.boundary.bottom.layer_cells
+
+    def with_changes(self, **changes) -> "Scenario":
+        """A validated copy with some fields replaced."""
+        return replace(self, **changes)
+
+    # serialisation
+    def to_dict(self) -> dict[str, Any]:
+        return scenario_to_dict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "Scenario":
+        return scenario_from_dict(data)
+
+    def to_toml(self) -> str:
+        return tomli_w.dumps(self.to_dict())
+
+    @classmethod
+    def from_toml(cls, text: str) -> "Scenario":
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ScenarioError("file", "TOML", f"valid TOML ({exc})") from None
+        return cls.from_dict(data)
+
+    def key(self) -> str:
+        """Stable hash of everything that affects the fields (not the title)."""
+        data = self.to_dict()
+        data.pop("title", None)
+        return _digest(data)
+
+    def reference_key(self) -> str:
+        """Stable hash of the problem without the layer settings (periodicity kept)."""
+        data = self.to_dict()
+        data.pop("title", None)
+        data["layer"] = {"periodic_x": self.boundary.periodic_x, "periodic_y": self.boundary.periodic_y}
+        return _digest(data)
+
+
+def _digest(data: dict) -> str:
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"), allow_nan=True)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+# --- dict / TOML form -------------------------------------------------------
+
+_SCALAR_KEYS = ("title", "dx", "dy", "nx", "ny", "steps", "courant", "eps_r", "sigma",
+                "polarization", "precision")
+_SIDE_KEYS = {f.name for f in fields(Side)} - {"label"}
+
+
+def _side_to_dict(side: Side) -> dict:
+    out = {k: v for k, v in asdict(side).items() if k in _SIDE_KEYS and v is not None}
+    out.pop("profile", None)
+    if side.profile is not None:
+        out["profile"] = {k: list(getattr(side.profile, k)) for k in ("depth", "sigma", "kappa", "alpha")}
+    return out
+
+
+def scenario_to_dict(s: Scenario) -> dict[str, Any]:
+    data: dict[str, Any] = {k: getattr(s, k) for k in _SCALAR_KEYS}
+    if not data["title"]:
+        data.pop("title")
+    src = asdict(s.source)
+    data["source"] = src
+    if s.probes:
+        data["probes"] = [asdict(p) for p in s.probes]
+    if s.blocks:
+        data["blocks"] = [asdict(b) for b in s.blocks]
+    data["layer"] = {name: _side_to_dict(getattr(s.boundary, name)) for name in SIDES}
+    return data
+
+
+def _side_from_dict(name: str, shared: dict, own: dict) -> Side:
+    merged = {**shared, **own}
+    _check_keys(f"layer.{name}", merged, _SIDE_KEYS)
+    profile = merged.pop("profile", None)
+    if profile is not None:
+        _check_keys(f"layer.{name}.profile", profile, ("depth", "sigma", "kappa", "alpha"))
+        missing = [k for k in ("depth", "sigma", "kappa", "alpha") if k not in profile]
+        if missing:
+            raise ScenarioError(f"layer.{name}.profile.{missing[0]}", None, "a list of numbers")
+        profile = Profile(**profile)
+    return Side(**merged, profile=profile, label=f"layer.{name}")
+
+
+def scenario_from_dict(data: dict) -> Scenario:
+    """Build a Scenario from its dict/TOML form; unknown keys are errors.
+
+    The [layer] table may hold keys shared by all sides plus a sub-table per
+    side (left, right, bottom, top) that overrides them.
+    """
+    _check_keys("", data, set(_SCALAR_KEYS) | {"source", "probes", "blocks", "layer"})
+    for key in ("dx", "dy", "nx", "ny", "source"):
+        if key not in data:
+            raise ScenarioError(key, None, "present (it has no default)")
+    src = data["source"]
+    _check_keys("source", src, {f.name for f in fields(Source)})
+    for key in ("x", "y", "f_max"):
+        if key not in src:
+            raise ScenarioError(f"source.{key}", None, "present (it has no default)")
+    probes = []
+    for i, p in enumerate(data.get("probes", [])):
+        _check_keys(f"probes[{i}]", p, ("name", "x", "y"))
+        for key in ("name", "x", "y"):
+            if key not in p:
+                raise ScenarioError(f"probes[{i}].{key}", None, "present")
+        probes.append(Probe(**p))
+    blocks = []
+    for i, b in enumerate(data.get("blocks", [])):
+        _check_keys(f"blocks[{i}]", b, {f.name for f in fields(Block)})
+        for key in ("x0", "x1", "y0", "y1"):
+            if key not in b:
+                raise ScenarioError(f"blocks[{i}].{key}", None, "present")
+        blocks.append(Block(**b))
+    layer = data.get("layer", {})
+    if not isinstance(layer, dict):
+        raise ScenarioError("layer", layer, "a table")
+    shared = {k: v for k, v in layer.items() if k not in SIDES}
+    sides = {}
+    for name in SIDES:
+        own = layer.get(name, {})
+        if not isinstance(own, dict):
+            raise ScenarioError(f"layer.{name}", own, "a table")
+        sides[name] = _side_from_dict(name, shared, own)
+    scalars = {k: data[k] for k in _SCALAR_KEYS if k in data}
+    return Scenario(source=Source(**src), probes=tuple(probes), blocks=tuple(blocks),
+                    boundary=Boundary(**sides), **scalars)

@@ -1,0 +1,145 @@
+"""The time-stepping driver: probes, snapshots, divergence guard, cancel."""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numba
+import numpy as np
+
+from . import kernels
+from .errors import DivergenceError, RunCancelled
+from .grid import YeeGrid, build_grid
+from .scenario import Scenario
+from .units import EPS0, ETA0
+
+PARALLEL_MIN_NODES = 400_000  # below this, fork-join costs more than it saves (measured)
+ENERGY_GROWTH_LIMIT = 1e4  # after the source is off, energy may not grow past this factor
+ENERGY_ABSOLUTE_LIMIT = 1e30  # J/m; far beyond any physical run, still short of float32 overflow
+
+
+@dataclass
+class RunResult:
+    """What one run produced, in SI units.
+
+    probes[name]: the primary field (Ez in V/m for TMz, Hz in A/m for TEz) at
+    times[n] = n dt, n = 0..steps.  snapshots[k]: the primary field on the
+    whole grid (layers included) after snapshot_steps[k] steps.  energy: field
+    energy per unit length (J/m) at energy_steps.
+    """
+
+    scenario: Scenario
+    grid: YeeGrid
+    times: np.ndarray
+    probes: dict[str, np.ndarray]
+    quantity: str
+    snapshot_steps: np.ndarray
+    snapshots: np.ndarray
+    energy_steps: np.ndarray
+    energy: np.ndarray
+    elapsed_s: float
+    threads: int
+    fields: dict[str, np.ndarray] = field(default_factory=dict)
+
+    @property
+    def mcells_per_s(self) -> float:
+        nx, ny = self.grid.cells
+        return nx * ny * self.scenario.steps / self.elapsed_s / 1e6 if self.elapsed_s > 0 else math.inf
+
+
+def default_threads(grid: YeeGrid) -> int:
+    """One thread for small grids, every core for large ones."""
+    nodes = grid.shape[0] * grid.shape[1]
+    return numba.config.NUMBA_NUM_THREADS if nodes >= PARALLEL_MIN_NODES else 1
+
+
+def field_energy(grid: YeeGrid, P, S1, S2) -> float:
+    """Electromagnetic energy per unit length, J/m: (1/2) sum(eps E^2 + mu0 H^2) dx dy."""
+    nx, ny = grid.cells
+    ux = nx if grid.periodic_x else nx + 1  # skip ghost copies on periodic axes
+    uy = ny if grid.periodic_y else ny + 1
+    Pv, S1v, S2v = P[:ux, :uy], S1[:ux, :], S2[:, :uy]
+    if grid.electric_primary:
+        total = (kernels.sum_weighted_squares(Pv, grid.eps_p[:ux, :uy])
+                 + kernels.sum_squares(S1v) + kernels.sum_squares(S2v))
+    else:
+        total = (kernels.sum_squares(Pv) + kernels.sum_weighted_squares(S1v, grid.eps_1[:ux, :])
+                 + kernels.sum_weighted_squares(S2v, grid.eps_2[:, :uy]))
+    s = grid.scenario
+    return 0.5 * EPS0 * s.dx * s.dy * total
+
+
+def simulate(scenario: Scenario, *, snapshot_every: int = 0,
+             progress: Callable[[int, int], bool | None] | None = None,
+             check_every: int = 100, threads: int | None = None,
+             keep_fields: bool = False, grid: YeeGrid | None = None) -> RunResult:
+    """Run `scenario` for scenario.steps steps.
+
+    snapshot_every: store the primary field every k steps (0: none).
+    progress(step, total): called every `check_every` steps; return False to
+    cancel (raises RunCancelled).  The divergence guard checks the field
+    energy at the same cadence and raises DivergenceError naming the step.
+    threads: kernel threads (default: chosen by grid size).
+    """
+    g = grid if grid is not None else build_grid(scenario)
+    s = scenario
+    n_threads = threads if threads is not None else default_threads(g)
+    P, S1, S2 = g.new_fields()
+    pulse = s.source.pulse
+    dt = s.dt
+    wave = np.asarray(pulse((np.arange(s.steps) + 0.5) * dt), dtype=g.dtype)
+    probe_out = np.zeros((s.steps + 1, g.probe_i.size), dtype=g.dtype)
+    source_off_step = int(math.ceil(pulse.end_time / dt))
+    snaps, snap_steps, e_steps, e_values = [], [], [], []
+    peak_energy = 0.0
+    step = 0
+    numba.set_num_threads(n_threads)  # per calling thread; the kernels' prange obeys it
+    t0 = time.perf_counter()
+    while step < s.steps:
+        stop = min(s.steps, step + check_every)
+        if snapshot_every:
+            stop = min(stop, (step // snapshot_every + 1) * snapshot_every)
+        kernels.advance(step, stop - step, P, S1, S2, g.electric_primary,
+                        g.ca_p, g.cb_p, g.ca1, g.cb1, g.ca2, g.cb2, g.k, g.edge_ca, g.edge_cb,
+                        g.gxn, g.gxh, g.gyn, g.gyh, g.slab_sx, g.slab_sy, g.slab_px, g.slab_py,
+                        g.periodic_x, g.periodic_y, g.edge_i, g.edge_j,
+                        g.src_i, g.src_j, g.src_coef, wave, g.probe_i, g.probe_j, probe_out)
+        step = stop
+        if snapshot_every and step % snapshot_every == 0:
+            snaps.append(P.copy())
+            snap_steps.append(step)
+        if step % check_every == 0 or step == s.steps:
+            energy = field_energy(g, P, S1, S2)
+            e_steps.append(step)
+            e_values.append(energy)
+            if not math.isfinite(energy):
+                raise DivergenceError(step, "the fields are no longer finite")
+            if energy > ENERGY_ABSOLUTE_LIMIT:
+                raise DivergenceError(step, f"field energy {energy:.3g} J/m is beyond any physical value")
+            if step <= source_off_step:
+                peak_energy = max(peak_energy, energy)
+            elif peak_energy > 0 and energy > ENERGY_GROWTH_LIMIT * peak_energy:
+                raise DivergenceError(step, f"field energy grew {energy / peak_energy:.3g} times "
+                                      "past its value while the source was on")
+            if progress is not None and progress(step, s.steps) is False:
+                raise RunCancelled(step)
+    elapsed = time.perf_counter() - t0
+
+    to_si = 1.0 if g.electric_primary else 1.0 / ETA0
+    quantity = "Ez (V/m)" if g.electric_primary else "Hz (A/m)"
+    probes = {p.name: probe_out[:, m].astype(float) * to_si for m, p in enumerate(s.probes)}
+    snapshots = (np.stack(snaps).astype(float) * to_si if snaps
+                 else np.zeros((0,) + g.shape))
+    fields = {}
+    if keep_fields:
+        if g.electric_primary:
+            fields = {"Ez": P.astype(float), "Hx": S1.astype(float) / ETA0, "Hy": S2.astype(float) / ETA0}
+        else:
+            fields = {"Hz": P.astype(float) / ETA0, "Ex": -S1.astype(float), "Ey": -S2.astype(float)}
+    return RunResult(scenario=s, grid=g, times=np.arange(s.steps + 1) * dt, probes=probes,
+                     quantity=quantity, snapshot_steps=np.asarray(snap_steps, dtype=int),
+                     snapshots=snapshots, energy_steps=np.asarray(e_steps, dtype=int),
+                     energy=np.asarray(e_values), elapsed_s=elapsed, threads=n_threads, fields=fields)
