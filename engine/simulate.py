@@ -43,6 +43,7 @@ class RunResult:
     elapsed_s: float
     threads: int
     fields: dict[str, np.ndarray] = field(default_factory=dict)
+    state: tuple = ()  # (P, S1, S2) as the kernels hold them, when keep_fields
 
     @property
     def mcells_per_s(self) -> float:
@@ -75,7 +76,8 @@ def field_energy(grid: YeeGrid, P, S1, S2) -> float:
 def simulate(scenario: Scenario, *, snapshot_every: int = 0,
              progress: Callable[[int, int], bool | None] | None = None,
              check_every: int = 100, threads: int | None = None,
-             keep_fields: bool = False, grid: YeeGrid | None = None) -> RunResult:
+             keep_fields: bool = False, grid: YeeGrid | None = None,
+             initial: np.ndarray | None = None) -> RunResult:
     """Run `scenario` for scenario.steps steps.
 
     snapshot_every: store the primary field every k steps (0: none).
@@ -83,15 +85,25 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     cancel (raises RunCancelled).  The divergence guard checks the field
     energy at the same cadence and raises DivergenceError naming the step.
     threads: kernel threads (default: chosen by grid size).
+    keep_fields: also return the final fields (SI) and the raw kernel state.
+    initial: primary field at t = 0 on every grid node (Ez in V/m or Hz in
+    A/m), e.g. to follow one eigenmode; the other fields start at zero.
     """
     g = grid if grid is not None else build_grid(scenario)
     s = scenario
     n_threads = threads if threads is not None else default_threads(g)
     P, S1, S2 = g.new_fields()
+    if initial is not None:
+        initial = np.asarray(initial, dtype=float)
+        if initial.shape != g.shape:
+            raise ValueError(f"initial field has shape {initial.shape}, the grid {g.shape}")
+        P[...] = initial * (1.0 if g.electric_primary else ETA0)
+        kernels.copy_ghosts(P, g.periodic_x, g.periodic_y)
     pulse = s.source.pulse
     dt = s.dt
     wave = np.asarray(pulse((np.arange(s.steps) + 0.5) * dt), dtype=g.dtype)
     probe_out = np.zeros((s.steps + 1, g.probe_i.size), dtype=g.dtype)
+    probe_out[0] = P[g.probe_i, g.probe_j]
     source_off_step = int(math.ceil(pulse.end_time / dt))
     snaps, snap_steps, e_steps, e_values = [], [], [], []
     peak_energy = 0.0
@@ -142,4 +154,5 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     return RunResult(scenario=s, grid=g, times=np.arange(s.steps + 1) * dt, probes=probes,
                      quantity=quantity, snapshot_steps=np.asarray(snap_steps, dtype=int),
                      snapshots=snapshots, energy_steps=np.asarray(e_steps, dtype=int),
-                     energy=np.asarray(e_values), elapsed_s=elapsed, threads=n_threads, fields=fields)
+                     energy=np.asarray(e_values), elapsed_s=elapsed, threads=n_threads, fields=fields,
+                     state=(P, S1, S2) if keep_fields else ())
