@@ -11,7 +11,7 @@ from .layer import LayerTable, layer_tables
 from .scenario import Scenario
 from .units import C0, EPS0, ETA0
 
-Slab = tuple  # (idx int64[n], b[n], c[n], psi 2D, coef 2D)
+Slab = tuple  # (start, b[n], c[n], psi 2D, coef 2D): see kernels.py
 
 
 @dataclass
@@ -29,23 +29,16 @@ class YeeGrid:
     eps_p: np.ndarray  # eps_r at primary nodes (float64)
     eps_1: np.ndarray  # eps_r at S1 positions
     eps_2: np.ndarray  # eps_r at S2 positions
-    ca_p: np.ndarray
-    cb_p: np.ndarray
-    ca1: np.ndarray
-    cb1: np.ndarray
-    ca2: np.ndarray
-    cb2: np.ndarray
-    k: np.floating
-    edge_ca: np.ndarray
-    edge_cb: np.ndarray
+    primary_coef: tuple  # (homogeneous, ca, cb, ca array, cb array)
+    secondary_coef: tuple  # (homogeneous, ca, cb, ca1, cb1, ca2, cb2)
+    edge_coef: tuple  # (ca, cb) arrays for periodic seams (1x1 if homogeneous)
+    cb_primary: np.ndarray  # cb at every primary node (float64), for the source
     gxn: np.ndarray
     gxh: np.ndarray
     gyn: np.ndarray
     gyh: np.ndarray
-    slab_sx: Slab
-    slab_sy: Slab
-    slab_px: Slab
-    slab_py: Slab
+    x_slabs: tuple  # (secondary low, secondary high, primary low, primary high)
+    y_slabs: tuple
     edge_i: np.ndarray
     edge_j: np.ndarray
     src_i: np.ndarray
@@ -95,36 +88,31 @@ def _electric_coefficients(eps: np.ndarray, sig: np.ndarray, dt: float):
 
 
 def _grading_1d(n_cells: int, d: float, low: LayerTable | None, high: LayerTable | None):
-    """1/(kappa d) at nodes and half nodes, and the slab rows with b and c/d."""
+    """1/(kappa d) at nodes and half nodes, and the slab rows of each side as
+    (start, b, c/d) for the half-node (secondary) and node (primary) psi."""
     g_node = np.ones(n_cells + 1)
     g_half = np.ones(n_cells)
-    rows_half, b_half, c_half, rows_node, b_node, c_node = [], [], [], [], [], []
+    empty = (0, np.zeros(0), np.zeros(0))
+    half_low = half_high = node_low = node_high = empty
     if low is not None:
         n = low.node_depth.size - 1
-        k = np.arange(n + 1)
-        g_node[n - k] = 1.0 / low.node_kappa
-        kh = np.arange(n)
-        g_half[n - 1 - kh] = 1.0 / low.half_kappa
-        rows_half += list(n - 1 - kh)
-        b_half += list(low.half_b)
-        c_half += list(low.half_c)
-        rows_node += list(n - kh)  # depths 0..n-1: nodes n..1 (the wall node stays zero)
-        b_node += list(low.node_b[:n])
-        c_node += list(low.node_c[:n])
+        g_node[: n + 1] = 1.0 / low.node_kappa[::-1]
+        g_half[:n] = 1.0 / low.half_kappa[::-1]
+        half_low = (0, low.half_b[::-1], low.half_c[::-1] / d)
+        # nodes 1..n hold depths n-1..0; the wall node 0 stays zero
+        node_low = (1, low.node_b[:n][::-1], low.node_c[:n][::-1] / d)
     if high is not None:
         n = high.node_depth.size - 1
         start = n_cells - n
         g_node[start:] = 1.0 / high.node_kappa
         g_half[start:] = 1.0 / high.half_kappa
-        rows_half += list(start + np.arange(n))
-        b_half += list(high.half_b)
-        c_half += list(high.half_c)
-        rows_node += list(start + np.arange(n))
-        b_node += list(high.node_b[:n])
-        c_node += list(high.node_c[:n])
-    as_int = lambda v: np.asarray(v, dtype=np.int64)
-    return (g_node / d, g_half / d, (as_int(rows_half), np.asarray(b_half), np.asarray(c_half) / d),
-            (as_int(rows_node), np.asarray(b_node), np.asarray(c_node) / d))
+        half_high = (start, high.half_b, high.half_c / d)
+        node_high = (start, high.node_b[:n], high.node_c[:n] / d)
+    return g_node / d, g_half / d, (half_low, half_high, node_low, node_high)
+
+
+def _homogeneous(*arrays) -> bool:
+    return all(np.all(a == a.flat[0]) for a in arrays)
 
 
 def build_grid(s: Scenario) -> YeeGrid:
@@ -147,34 +135,47 @@ def build_grid(s: Scenario) -> YeeGrid:
     eps_2, sig_2 = _paint(s, x_half, y_node)
     k64 = C0 * dt
     one = np.ones((1, 1), dtype)
+    cast_scalar = dtype.type
     if electric_primary:
-        ca_p, cb_p = (cast(a) for a in _electric_coefficients(eps_p, sig_p, dt))
-        ca1 = cb1 = ca2 = cb2 = one
-        edge_ca, edge_cb = ca_p, cb_p
-        src_scale = cb_p
+        ca_p, cb_p = _electric_coefficients(eps_p, sig_p, dt)
+        homog = _homogeneous(ca_p, cb_p)
+        primary_coef = (homog, cast_scalar(ca_p.flat[0]), cast_scalar(cb_p.flat[0]),
+                        one if homog else cast(ca_p), one if homog else cast(cb_p))
+        secondary_coef = (True, cast_scalar(1.0), cast_scalar(k64), one, one, one, one)
+        cb_primary = cb_p
+        cb_s1 = cb_s2 = None
     else:
-        ca1, cb1 = (cast(a) for a in _electric_coefficients(eps_1, sig_1, dt))
-        ca2, cb2 = (cast(a) for a in _electric_coefficients(eps_2, sig_2, dt))
-        ca_p = cb_p = one
-        edge_ca, edge_cb = one, cast(np.full((1, 1), k64))
-        src_scale = None
+        ca1, cb1 = _electric_coefficients(eps_1, sig_1, dt)
+        ca2, cb2 = _electric_coefficients(eps_2, sig_2, dt)
+        homog = _homogeneous(ca1, cb1, ca2, cb2)
+        secondary_coef = (homog, cast_scalar(ca1.flat[0]), cast_scalar(cb1.flat[0])) + (
+            (one,) * 4 if homog else (cast(ca1), cast(cb1), cast(ca2), cast(cb2)))
+        primary_coef = (True, cast_scalar(1.0), cast_scalar(k64), one, one)
+        cb_primary = np.full(eps_p.shape, k64)
+        cb_s1, cb_s2 = cb1, cb2
+    if primary_coef[0]:
+        edge_coef = (cast(np.full((1, 1), primary_coef[1])), cast(np.full((1, 1), primary_coef[2])))
+    else:
+        edge_coef = (primary_coef[3], primary_coef[4])
 
-    gxn, gxh, x_half_rows, x_node_rows = _grading_1d(NX, s.dx, tables.get("left"), tables.get("right"))
-    gyn, gyh, y_half_rows, y_node_rows = _grading_1d(NY, s.dy, tables.get("bottom"), tables.get("top"))
+    gxn, gxh, x_rows = _grading_1d(NX, s.dx, tables.get("left"), tables.get("right"))
+    gyn, gyh, y_rows = _grading_1d(NY, s.dy, tables.get("bottom"), tables.get("top"))
 
     def slab(rows, along_x: bool, coef_full):
-        idx, b, c = rows
-        shape = (idx.size, NY + 1) if along_x else (NX + 1, idx.size)
+        """(start, b, c, psi, coef) of one side; coef_full None: the vacuum factor c0 dt."""
+        start, b, c = rows
+        n = b.size
+        shape = (n, NY + 1) if along_x else (NX + 1, n)
         if coef_full is None:
             coef = np.full(shape, k64)
         else:
-            coef = coef_full[idx, :] if along_x else coef_full[:, idx]
-        return idx, cast(b), cast(c), np.zeros(shape, dtype), cast(coef)
+            coef = coef_full[start:start + n, :] if along_x else coef_full[:, start:start + n]
+        return np.int64(start), cast(b), cast(c), np.zeros(shape, dtype), cast(coef)
 
-    slab_sx = slab(x_half_rows, True, None if electric_primary else cb2)
-    slab_sy = slab(y_half_rows, False, None if electric_primary else cb1)
-    slab_px = slab(x_node_rows, True, cb_p if electric_primary else None)
-    slab_py = slab(y_node_rows, False, cb_p if electric_primary else None)
+    x_slabs = (slab(x_rows[0], True, cb_s2), slab(x_rows[1], True, cb_s2),
+               slab(x_rows[2], True, cb_primary), slab(x_rows[3], True, cb_primary))
+    y_slabs = (slab(y_rows[0], False, cb_s1), slab(y_rows[1], False, cb_s1),
+               slab(y_rows[2], False, cb_primary), slab(y_rows[3], False, cb_primary))
 
     # nodes on a periodic seam need wrapped neighbours
     px, py = bnd.periodic_x, bnd.periodic_y
@@ -200,17 +201,15 @@ def build_grid(s: Scenario) -> YeeGrid:
     src_i = np.array([n[0] for n in nodes], dtype=np.int64)
     src_j = np.array([n[1] for n in nodes], dtype=np.int64)
     drive = -ETA0 * src.amplitude / (s.dx * s.dy)
-    scale = np.full(src_i.size, k64) if src_scale is None else np.asarray(src_scale[src_i, src_j], dtype=float)
-    src_coef = cast(scale * drive)
+    src_coef = cast(cb_primary[src_i, src_j] * drive)
 
     probe_i = np.array([ox + p.x for p in s.probes], dtype=np.int64)
     probe_j = np.array([oy + p.y for p in s.probes], dtype=np.int64)
     return YeeGrid(
         scenario=s, dtype=dtype, cells=(NX, NY), offset=(ox, oy), periodic_x=px, periodic_y=py,
         electric_primary=electric_primary, eps_p=eps_p, eps_1=eps_1, eps_2=eps_2,
-        ca_p=ca_p, cb_p=cb_p, ca1=ca1, cb1=cb1, ca2=ca2, cb2=cb2, k=dtype.type(k64),
-        edge_ca=edge_ca, edge_cb=edge_cb,
-        gxn=cast(gxn), gxh=cast(gxh), gyn=cast(gyn), gyh=cast(gyh),
-        slab_sx=slab_sx, slab_sy=slab_sy, slab_px=slab_px, slab_py=slab_py,
+        primary_coef=primary_coef, secondary_coef=secondary_coef, edge_coef=edge_coef,
+        cb_primary=cb_primary, gxn=cast(gxn), gxh=cast(gxh), gyn=cast(gyn), gyh=cast(gyh),
+        x_slabs=x_slabs, y_slabs=y_slabs,
         edge_i=edge_i, edge_j=edge_j, src_i=src_i, src_j=src_j, src_coef=src_coef,
         probe_i=probe_i, probe_j=probe_j, tables=tables)

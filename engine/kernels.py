@@ -8,9 +8,12 @@ eta0 H), which makes TMz and TEz runs of the same problem bitwise duals.
 
 Shapes: P (NX+1, NY+1), S1 (NX+1, NY), S2 (NX, NY+1).  g* are 1D arrays
 1 / (kappa d) at node (n) or half-node (h) positions.  Psi lives only in the
-layer slabs: x-slabs are rows idx[k] spanning every j, y-slabs are columns
-idx[k] spanning every i, so corners carry both.  Every kernel takes plain
-arrays and scalars of one dtype; no Python objects.
+layer slabs, one per side and field: an x-slab is the rows start..start+n-1
+across every j, a y-slab the columns start..start+n-1 across every i, so the
+corners carry both.  A slab is the tuple (start, b, c, psi, coef).  Every
+kernel takes plain arrays and scalars of one dtype; no Python objects.
+Update coefficients come either as scalars (a homogeneous field) or as
+arrays (materials).
 """
 
 from numba import njit, prange
@@ -22,21 +25,21 @@ _PARALLEL = dict(cache=True, nogil=True, parallel=True)
 # --- bulk updates -----------------------------------------------------------
 
 @njit(**_PARALLEL)
-def secondary_uniform(P, S1, S2, k, gyh, gxh):
-    """S1 -= k dP/dy, S2 += k dP/dx, for a field with no material (H in TMz)."""
+def secondary_scalar(P, S1, S2, ca, cb, gyh, gxh):
+    """S1 = ca S1 - cb dP/dy, S2 = ca S2 + cb dP/dx with one ca, cb everywhere."""
     nxp, nyp = P.shape
     for i in prange(nxp):
         for j in range(nyp - 1):
-            S1[i, j] = S1[i, j] - k * ((P[i, j + 1] - P[i, j]) * gyh[j])
+            S1[i, j] = ca * S1[i, j] - cb * ((P[i, j + 1] - P[i, j]) * gyh[j])
         if i < nxp - 1:
             g = gxh[i]
             for j in range(nyp):
-                S2[i, j] = S2[i, j] + k * ((P[i + 1, j] - P[i, j]) * g)
+                S2[i, j] = ca * S2[i, j] + cb * ((P[i + 1, j] - P[i, j]) * g)
 
 
 @njit(**_PARALLEL)
-def secondary_material(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh):
-    """The same with per-node loss and permittivity (E in TEz)."""
+def secondary_array(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh):
+    """The same with per-position coefficients (E in TEz with materials)."""
     nxp, nyp = P.shape
     for i in prange(nxp):
         for j in range(nyp - 1):
@@ -48,24 +51,24 @@ def secondary_material(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh):
 
 
 @njit(**_PARALLEL)
-def primary_material(P, S1, S2, ca, cb, gxn, gyn):
-    """P = ca P + cb (dS2/dx - dS1/dy) on the inner nodes (Ez in TMz)."""
+def primary_scalar(P, S1, S2, ca, cb, gxn, gyn):
+    """P = ca P + cb (dS2/dx - dS1/dy) on the inner nodes, one ca, cb everywhere."""
+    nxp, nyp = P.shape
+    for i in prange(1, nxp - 1):
+        g = gxn[i]
+        for j in range(1, nyp - 1):
+            P[i, j] = ca * P[i, j] + cb * (
+                (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
+
+
+@njit(**_PARALLEL)
+def primary_array(P, S1, S2, ca, cb, gxn, gyn):
+    """The same with per-node coefficients (Ez in TMz with materials)."""
     nxp, nyp = P.shape
     for i in prange(1, nxp - 1):
         g = gxn[i]
         for j in range(1, nyp - 1):
             P[i, j] = ca[i, j] * P[i, j] + cb[i, j] * (
-                (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
-
-
-@njit(**_PARALLEL)
-def primary_uniform(P, S1, S2, k, gxn, gyn):
-    """P += k (dS2/dx - dS1/dy) on the inner nodes (Hz in TEz)."""
-    nxp, nyp = P.shape
-    for i in prange(1, nxp - 1):
-        g = gxn[i]
-        for j in range(1, nyp - 1):
-            P[i, j] = P[i, j] + k * (
                 (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
 
 
@@ -75,7 +78,7 @@ def primary_uniform(P, S1, S2, k, gxn, gyn):
 def primary_edges(P, S1, S2, ca, cb, gxn, gyn, edge_i, edge_j):
     """Primary update on the nodes of a periodic seam (wrapped neighbours).
 
-    ca, cb are full arrays, or 1x1 arrays holding (1, k) for a uniform field.
+    ca, cb are full arrays, or 1x1 arrays for a homogeneous field.
     """
     nx = S2.shape[0]
     ny = S1.shape[1]
@@ -105,10 +108,11 @@ def copy_ghosts(P, periodic_x, periodic_y):
 # --- CPML psi terms (layer slabs only) --------------------------------------
 
 @njit(**_SERIAL)
-def psi_secondary_x(P, S2, idx, b, c, psi, coef):
+def psi_secondary_x(P, S2, slab):
     """x-slab rows of S2: psi <- b psi + c dP/dx;  S2 += coef psi."""
-    for k in range(idx.size):
-        i = idx[k]
+    start, b, c, psi, coef = slab
+    for k in range(b.size):
+        i = start + k
         bk = b[k]
         ck = c[k]
         for j in range(S2.shape[1]):
@@ -117,20 +121,22 @@ def psi_secondary_x(P, S2, idx, b, c, psi, coef):
 
 
 @njit(**_SERIAL)
-def psi_secondary_y(P, S1, idx, b, c, psi, coef):
+def psi_secondary_y(P, S1, slab):
     """y-slab columns of S1: psi <- b psi + c dP/dy;  S1 -= coef psi."""
+    start, b, c, psi, coef = slab
     for i in range(S1.shape[0]):
-        for k in range(idx.size):
-            j = idx[k]
+        for k in range(b.size):
+            j = start + k
             psi[i, k] = b[k] * psi[i, k] + c[k] * (P[i, j + 1] - P[i, j])
             S1[i, j] -= coef[i, k] * psi[i, k]
 
 
 @njit(**_SERIAL)
-def psi_primary_x(S2, P, idx, b, c, psi, coef, j_lo, j_hi):
+def psi_primary_x(S2, P, slab, j_lo, j_hi):
     """x-slab rows of P (never row 0): psi <- b psi + c dS2/dx;  P += coef psi."""
-    for k in range(idx.size):
-        i = idx[k]
+    start, b, c, psi, coef = slab
+    for k in range(b.size):
+        i = start + k
         bk = b[k]
         ck = c[k]
         for j in range(j_lo, j_hi):
@@ -139,11 +145,12 @@ def psi_primary_x(S2, P, idx, b, c, psi, coef, j_lo, j_hi):
 
 
 @njit(**_SERIAL)
-def psi_primary_y(S1, P, idx, b, c, psi, coef, i_lo, i_hi):
+def psi_primary_y(S1, P, slab, i_lo, i_hi):
     """y-slab columns of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
+    start, b, c, psi, coef = slab
     for i in range(i_lo, i_hi):
-        for k in range(idx.size):
-            j = idx[k]
+        for k in range(b.size):
+            j = start + k
             psi[i, k] = b[k] * psi[i, k] + c[k] * (S1[i, j] - S1[i, j - 1])
             P[i, j] -= coef[i, k] * psi[i, k]
 
@@ -177,38 +184,44 @@ def sum_weighted_squares(A, W):
 # --- the time loop ----------------------------------------------------------
 
 @njit(**_SERIAL)
-def advance(first_step, n_steps, P, S1, S2, electric_primary,
-            ca_p, cb_p, ca1, cb1, ca2, cb2, k, edge_ca, edge_cb,
-            gxn, gxh, gyn, gyh, slab_sx, slab_sy, slab_px, slab_py,
+def advance(first_step, n_steps, P, S1, S2, primary_coef, secondary_coef, edge_coef,
+            gxn, gxh, gyn, gyh, x_slabs, y_slabs,
             periodic_x, periodic_y, edge_i, edge_j,
             src_i, src_j, src_coef, wave, probe_i, probe_j, probe_out):
     """Run n_steps leapfrog steps from first_step.
 
-    slab_* = (idx, b, c, psi, coef) for S2 in x-slabs, S1 in y-slabs, P in
-    x-slabs, P in y-slabs.  wave[n] is the source sample at (n + 1/2) dt;
-    probe_out[n + 1, m] receives P at probe m after step n.
+    primary_coef / secondary_coef: (homogeneous, ca, cb, ca_arrays..., cb_arrays...)
+    as built by grid.py; edge_coef: (ca, cb) arrays for the periodic seam.
+    x_slabs / y_slabs: (secondary low, secondary high, primary low, primary high).
+    wave[n] is the source sample at (n + 1/2) dt; probe_out[n + 1, m]
+    receives P at probe m after step n.
     """
     nxp, nyp = P.shape
     i_lo = 0 if periodic_x else 1
     j_lo = 0 if periodic_y else 1
-    sx_idx, sx_b, sx_c, sx_psi, sx_coef = slab_sx
-    sy_idx, sy_b, sy_c, sy_psi, sy_coef = slab_sy
-    px_idx, px_b, px_c, px_psi, px_coef = slab_px
-    py_idx, py_b, py_c, py_psi, py_coef = slab_py
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = primary_coef
+    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = secondary_coef
+    e_ca, e_cb = edge_coef
+    sx_lo, sx_hi, px_lo, px_hi = x_slabs
+    sy_lo, sy_hi, py_lo, py_hi = y_slabs
     for n in range(first_step, first_step + n_steps):
-        if electric_primary:
-            secondary_uniform(P, S1, S2, k, gyh, gxh)
+        if s_homog:
+            secondary_scalar(P, S1, S2, s_ca, s_cb, gyh, gxh)
         else:
-            secondary_material(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh)
-        psi_secondary_x(P, S2, sx_idx, sx_b, sx_c, sx_psi, sx_coef)
-        psi_secondary_y(P, S1, sy_idx, sy_b, sy_c, sy_psi, sy_coef)
-        if electric_primary:
-            primary_material(P, S1, S2, ca_p, cb_p, gxn, gyn)
+            secondary_array(P, S1, S2, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
+        psi_secondary_x(P, S2, sx_lo)
+        psi_secondary_x(P, S2, sx_hi)
+        psi_secondary_y(P, S1, sy_lo)
+        psi_secondary_y(P, S1, sy_hi)
+        if p_homog:
+            primary_scalar(P, S1, S2, p_ca, p_cb, gxn, gyn)
         else:
-            primary_uniform(P, S1, S2, k, gxn, gyn)
-        primary_edges(P, S1, S2, edge_ca, edge_cb, gxn, gyn, edge_i, edge_j)
-        psi_primary_x(S2, P, px_idx, px_b, px_c, px_psi, px_coef, j_lo, nyp - 1)
-        psi_primary_y(S1, P, py_idx, py_b, py_c, py_psi, py_coef, i_lo, nxp - 1)
+            primary_array(P, S1, S2, p_ca_arr, p_cb_arr, gxn, gyn)
+        primary_edges(P, S1, S2, e_ca, e_cb, gxn, gyn, edge_i, edge_j)
+        psi_primary_x(S2, P, px_lo, j_lo, nyp - 1)
+        psi_primary_x(S2, P, px_hi, j_lo, nyp - 1)
+        psi_primary_y(S1, P, py_lo, i_lo, nxp - 1)
+        psi_primary_y(S1, P, py_hi, i_lo, nxp - 1)
         add_source(P, src_i, src_j, src_coef, wave[n])
         copy_ghosts(P, periodic_x, periodic_y)
         for m in range(probe_i.size):

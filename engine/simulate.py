@@ -108,9 +108,8 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     snaps, snap_steps, e_steps, e_values = [], [], [], []
     peak_energy = 0.0
     step = 0
-    kernel_args = (P, S1, S2, g.electric_primary,
-                   g.ca_p, g.cb_p, g.ca1, g.cb1, g.ca2, g.cb2, g.k, g.edge_ca, g.edge_cb,
-                   g.gxn, g.gxh, g.gyn, g.gyh, g.slab_sx, g.slab_sy, g.slab_px, g.slab_py,
+    kernel_args = (P, S1, S2, g.primary_coef, g.secondary_coef, g.edge_coef,
+                   g.gxn, g.gxh, g.gyn, g.gyh, g.x_slabs, g.y_slabs,
                    g.periodic_x, g.periodic_y, g.edge_i, g.edge_j,
                    g.src_i, g.src_j, g.src_coef, wave, g.probe_i, g.probe_j, probe_out)
     kernels.advance(0, 0, *kernel_args)  # compile or load from cache outside the timing

@@ -80,10 +80,13 @@ def test_psi_lives_only_in_the_layer():
     s = scenario(Side(cells=6))
     g = build_grid(s)
     NX, NY = g.cells
-    assert g.slab_sx[3].shape == (12, NY + 1)
-    assert g.slab_py[3].shape == (NX + 1, 12)
-    assert set(g.slab_px[0]) == set(range(1, 7)) | set(range(NX - 6, NX))
-    assert set(g.slab_sx[0]) == set(range(0, 6)) | set(range(NX - 6, NX))
+    sx_lo, sx_hi, px_lo, px_hi = g.x_slabs
+    assert sx_lo[3].shape == sx_hi[3].shape == (6, NY + 1)  # rows of the layer, every column
+    assert g.y_slabs[3][3].shape == (NX + 1, 6)
+    assert (sx_lo[0], sx_hi[0]) == (0, NX - 6)  # half nodes 1/2..5+1/2 and their mirror
+    assert (px_lo[0], px_hi[0]) == (1, NX - 6)  # nodes 1..6 (depths 5..0); the wall stays zero
+    total = sum(a[3].size for a in g.x_slabs + g.y_slabs)
+    assert total < 0.5 * (NX + 1) * (NY + 1) * 4  # no full-grid psi arrays
 
 
 def test_user_profile_at_exact_nodes_reproduces_the_graded_layer():
