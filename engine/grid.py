@@ -31,16 +31,13 @@ class YeeGrid:
     eps_2: np.ndarray  # eps_r at S2 positions
     primary_coef: tuple  # (homogeneous, ca, cb, ca array, cb array)
     secondary_coef: tuple  # (homogeneous, ca, cb, ca1, cb1, ca2, cb2)
-    edge_coef: tuple  # (ca, cb) arrays for periodic seams (1x1 if homogeneous)
     cb_primary: np.ndarray  # cb at every primary node (float64), for the source
     gxn: np.ndarray
     gxh: np.ndarray
     gyn: np.ndarray
     gyh: np.ndarray
-    x_slabs: tuple  # (secondary low, secondary high, primary low, primary high)
-    y_slabs: tuple
-    edge_i: np.ndarray
-    edge_j: np.ndarray
+    x_slabs: tuple  # (S2 low, S2 high, P low, P high, gxn, gxh): see kernels.step_rows
+    y_slabs: tuple  # (S1 low, S1 high, P low, P high, gyn, gyh)
     src_i: np.ndarray
     src_j: np.ndarray
     src_coef: np.ndarray
@@ -153,11 +150,6 @@ def build_grid(s: Scenario) -> YeeGrid:
         primary_coef = (True, cast_scalar(1.0), cast_scalar(k64), one, one)
         cb_primary = np.full(eps_p.shape, k64)
         cb_s1, cb_s2 = cb1, cb2
-    if primary_coef[0]:
-        edge_coef = (cast(np.full((1, 1), primary_coef[1])), cast(np.full((1, 1), primary_coef[2])))
-    else:
-        edge_coef = (primary_coef[3], primary_coef[4])
-
     gxn, gxh, x_rows = _grading_1d(NX, s.dx, tables.get("left"), tables.get("right"))
     gyn, gyh, y_rows = _grading_1d(NY, s.dy, tables.get("bottom"), tables.get("top"))
 
@@ -172,22 +164,13 @@ def build_grid(s: Scenario) -> YeeGrid:
             coef = coef_full[start:start + n, :] if along_x else coef_full[:, start:start + n]
         return np.int64(start), cast(b), cast(c), np.zeros(shape, dtype), cast(coef)
 
+    gxn, gxh, gyn, gyh = cast(gxn), cast(gxh), cast(gyn), cast(gyh)
     x_slabs = (slab(x_rows[0], True, cb_s2), slab(x_rows[1], True, cb_s2),
-               slab(x_rows[2], True, cb_primary), slab(x_rows[3], True, cb_primary))
+               slab(x_rows[2], True, cb_primary), slab(x_rows[3], True, cb_primary), gxn, gxh)
     y_slabs = (slab(y_rows[0], False, cb_s1), slab(y_rows[1], False, cb_s1),
-               slab(y_rows[2], False, cb_primary), slab(y_rows[3], False, cb_primary))
+               slab(y_rows[2], False, cb_primary), slab(y_rows[3], False, cb_primary), gyn, gyh)
 
-    # nodes on a periodic seam need wrapped neighbours
     px, py = bnd.periodic_x, bnd.periodic_y
-    edges = set()
-    if px:
-        edges |= {(0, j) for j in range(0 if py else 1, NY)}
-    if py:
-        edges |= {(i, 0) for i in range(0 if px else 1, NX)}
-    edge_list = sorted(edges)
-    edge_i = np.array([e[0] for e in edge_list], dtype=np.int64)
-    edge_j = np.array([e[1] for e in edge_list], dtype=np.int64)
-
     src = s.source
     si, sj = ox + src.x, oy + src.y
     if src.line == "y":
@@ -208,8 +191,8 @@ def build_grid(s: Scenario) -> YeeGrid:
     return YeeGrid(
         scenario=s, dtype=dtype, cells=(NX, NY), offset=(ox, oy), periodic_x=px, periodic_y=py,
         electric_primary=electric_primary, eps_p=eps_p, eps_1=eps_1, eps_2=eps_2,
-        primary_coef=primary_coef, secondary_coef=secondary_coef, edge_coef=edge_coef,
-        cb_primary=cb_primary, gxn=cast(gxn), gxh=cast(gxh), gyn=cast(gyn), gyh=cast(gyh),
+        primary_coef=primary_coef, secondary_coef=secondary_coef,
+        cb_primary=cb_primary, gxn=gxn, gxh=gxh, gyn=gyn, gyh=gyh,
         x_slabs=x_slabs, y_slabs=y_slabs,
-        edge_i=edge_i, edge_j=edge_j, src_i=src_i, src_j=src_j, src_coef=src_coef,
+        src_i=src_i, src_j=src_j, src_coef=src_coef,
         probe_i=probe_i, probe_j=probe_j, tables=tables)

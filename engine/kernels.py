@@ -10,38 +10,42 @@ Shapes: P (NX+1, NY+1), S1 (NX+1, NY), S2 (NX, NY+1).  g* are 1D arrays
 1 / (kappa d) at node (n) or half-node (h) positions.  Psi lives only in the
 layer slabs, one per side and field: an x-slab is the rows start..start+n-1
 across every j, a y-slab the columns start..start+n-1 across every i, so the
-corners carry both.  A slab is the tuple (start, b, c, psi, coef).  Every
-kernel takes plain arrays and scalars of one dtype; no Python objects.
-Update coefficients come either as scalars (a homogeneous field) or as
-arrays (materials).
+corners carry both.  A slab is the tuple (start, b, c, psi, coef).
+
+One step is one sweep over the rows (`step_rows`): row i of S1 and S2 with
+their psi terms, then row i of P with its psi terms.  Row i of P needs S2 of
+rows i-1 and i, which are both new by then, and S2 of row i reads P of row
+i+1, which is still old: so the leapfrog order holds within one pass and the
+fields are read from memory once per step instead of twice.  Threads take
+contiguous chunks of rows; the first P row of each later chunk needs the
+previous chunk's last S2 row, so it waits until all chunks are done.
+
+Every kernel takes plain arrays and scalars of one dtype; no Python objects.
+Update coefficients come as scalars (a homogeneous field) or arrays
+(materials).
 """
 
 from numba import njit, prange
 
 _SERIAL = dict(cache=True, nogil=True)
 _PARALLEL = dict(cache=True, nogil=True, parallel=True)
+_ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cost per row
 
 
-# --- bulk updates -----------------------------------------------------------
+# --- one row of the secondaries --------------------------------------------
 
-@njit(**_PARALLEL)
-def secondary_scalar(P, S1, S2, ca, cb, gyh, gxh):
-    """S1 = ca S1 - cb dP/dy, S2 = ca S2 + cb dP/dx with one ca, cb everywhere."""
+@njit(**_ROW)
+def secondary_row(P, S1, S2, i, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
+    """S1[i] = ca S1 - cb dP/dy;  S2[i] = ca S2 + cb dP/dx (scalar or per-node ca, cb)."""
     nxp, nyp = P.shape
-    for i in prange(nxp):
+    if homog:
         for j in range(nyp - 1):
             S1[i, j] = ca * S1[i, j] - cb * ((P[i, j + 1] - P[i, j]) * gyh[j])
         if i < nxp - 1:
             g = gxh[i]
             for j in range(nyp):
                 S2[i, j] = ca * S2[i, j] + cb * ((P[i + 1, j] - P[i, j]) * g)
-
-
-@njit(**_PARALLEL)
-def secondary_array(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh):
-    """The same with per-position coefficients (E in TEz with materials)."""
-    nxp, nyp = P.shape
-    for i in prange(nxp):
+    else:
         for j in range(nyp - 1):
             S1[i, j] = ca1[i, j] * S1[i, j] - cb1[i, j] * ((P[i, j + 1] - P[i, j]) * gyh[j])
         if i < nxp - 1:
@@ -50,47 +54,145 @@ def secondary_array(P, S1, S2, ca1, cb1, ca2, cb2, gyh, gxh):
                 S2[i, j] = ca2[i, j] * S2[i, j] + cb2[i, j] * ((P[i + 1, j] - P[i, j]) * g)
 
 
-@njit(**_PARALLEL)
-def primary_scalar(P, S1, S2, ca, cb, gxn, gyn):
-    """P = ca P + cb (dS2/dx - dS1/dy) on the inner nodes, one ca, cb everywhere."""
-    nxp, nyp = P.shape
-    for i in prange(1, nxp - 1):
-        g = gxn[i]
+@njit(**_ROW)
+def secondary_psi_y(P, S1, i, start, b, c, psi, coef):
+    """Row i of a y-slab of S1: psi <- b psi + c dP/dy;  S1 -= coef psi."""
+    for k in range(b.size):
+        j = start + k
+        psi[i, k] = b[k] * psi[i, k] + c[k] * (P[i, j + 1] - P[i, j])
+        S1[i, j] -= coef[i, k] * psi[i, k]
+
+
+@njit(**_ROW)
+def secondary_psi_x(P, S2, i, start, b, c, psi, coef):
+    """Row i of S2 if it lies in this x-slab: psi <- b psi + c dP/dx;  S2 += coef psi."""
+    k = i - start
+    if 0 <= k < b.size:
+        bk = b[k]
+        ck = c[k]
+        for j in range(S2.shape[1]):
+            psi[k, j] = bk * psi[k, j] + ck * (P[i + 1, j] - P[i, j])
+            S2[i, j] += coef[k, j] * psi[k, j]
+
+
+# --- one row of the primary --------------------------------------------------
+
+@njit(**_ROW)
+def primary_row(P, S1, S2, i, homog, ca, cb, ca_arr, cb_arr, gxn, gyn):
+    """P[i] = ca P + cb (dS2/dx - dS1/dy) on the inner nodes of row i."""
+    nyp = P.shape[1]
+    g = gxn[i]
+    if homog:
         for j in range(1, nyp - 1):
             P[i, j] = ca * P[i, j] + cb * (
                 (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
-
-
-@njit(**_PARALLEL)
-def primary_array(P, S1, S2, ca, cb, gxn, gyn):
-    """The same with per-node coefficients (Ez in TMz with materials)."""
-    nxp, nyp = P.shape
-    for i in prange(1, nxp - 1):
-        g = gxn[i]
+    else:
         for j in range(1, nyp - 1):
-            P[i, j] = ca[i, j] * P[i, j] + cb[i, j] * (
+            P[i, j] = ca_arr[i, j] * P[i, j] + cb_arr[i, j] * (
                 (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
 
 
-# --- periodic edges ---------------------------------------------------------
+@njit(**_ROW)
+def primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi):
+    """Row i of P if it lies in this x-slab: psi <- b psi + c dS2/dx;  P += coef psi."""
+    k = i - start
+    if 0 <= k < b.size:
+        bk = b[k]
+        ck = c[k]
+        for j in range(j_lo, j_hi):
+            psi[k, j] = bk * psi[k, j] + ck * (S2[i, j] - S2[i - 1, j])
+            P[i, j] += coef[k, j] * psi[k, j]
+
+
+@njit(**_ROW)
+def primary_psi_y(S1, P, i, start, b, c, psi, coef):
+    """Row i of a y-slab of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
+    for k in range(b.size):
+        j = start + k
+        psi[i, k] = b[k] * psi[i, k] + c[k] * (S1[i, j] - S1[i, j - 1])
+        P[i, j] -= coef[i, k] * psi[i, k]
+
 
 @njit(**_SERIAL)
-def primary_edges(P, S1, S2, ca, cb, gxn, gyn, edge_i, edge_j):
-    """Primary update on the nodes of a periodic seam (wrapped neighbours).
+def primary_psi(S1, S2, P, i, x_slabs, y_slabs, j_lo, j_hi):
+    """All psi terms of row i of P: x-slabs over columns j_lo..j_hi-1, then y-slabs."""
+    for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
+        primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi)
+    for start, b, c, psi, coef in (y_slabs[2], y_slabs[3]):
+        primary_psi_y(S1, P, i, start, b, c, psi, coef)
 
-    ca, cb are full arrays, or 1x1 arrays for a homogeneous field.
+
+# --- one whole step ---------------------------------------------------------
+
+@njit(**_PARALLEL)
+def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
+    """Secondaries then primary, row by row, in len(chunk_starts) - 1 parallel chunks.
+
+    sc = (homog, ca, cb, ca1, cb1, ca2, cb2); pc = (homog, ca, cb, ca_arr, cb_arr);
+    x_slabs = (S2 low, S2 high, P low, P high, gxn, gxh), y_slabs likewise with
+    S1 and (gyn, gyh).  Row 0 and the last row of P are walls or periodic seams,
+    done elsewhere.  The tuples are unpacked into plain arrays first because a
+    parallel loop takes arrays and scalars only.
     """
-    nx = S2.shape[0]
-    ny = S1.shape[1]
-    full = ca.shape[0] > 1
-    for n in range(edge_i.size):
-        i = edge_i[n]
-        j = edge_j[n]
-        im = i - 1 if i > 0 else nx - 1
-        jm = j - 1 if j > 0 else ny - 1
-        a = ca[i, j] if full else ca[0, 0]
-        b = cb[i, j] if full else cb[0, 0]
-        P[i, j] = a * P[i, j] + b * ((S2[i, j] - S2[im, j]) * gxn[i] - (S1[i, j] - S1[i, jm]) * gyn[j])
+    nxp, nyp = P.shape
+    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = sc
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
+    (a_start, a_b, a_c, a_psi, a_coef), (b_start, b_b, b_c, b_psi, b_coef) = x_slabs[0], x_slabs[1]
+    (c_start, c_b, c_c, c_psi, c_coef), (d_start, d_b, d_c, d_psi, d_coef) = x_slabs[2], x_slabs[3]
+    (e_start, e_b, e_c, e_psi, e_coef), (f_start, f_b, f_c, f_psi, f_coef) = y_slabs[0], y_slabs[1]
+    (g_start, g_b, g_c, g_psi, g_coef), (h_start, h_b, h_c, h_psi, h_coef) = y_slabs[2], y_slabs[3]
+    gxn, gxh = x_slabs[4], x_slabs[5]
+    gyn, gyh = y_slabs[4], y_slabs[5]
+    n_chunks = chunk_starts.size - 1
+    for chunk in prange(n_chunks):
+        first = chunk_starts[chunk]
+        for i in range(first, chunk_starts[chunk + 1]):
+            secondary_row(P, S1, S2, i, s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
+            secondary_psi_y(P, S1, i, e_start, e_b, e_c, e_psi, e_coef)
+            secondary_psi_y(P, S1, i, f_start, f_b, f_c, f_psi, f_coef)
+            if i < nxp - 1:
+                secondary_psi_x(P, S2, i, a_start, a_b, a_c, a_psi, a_coef)
+                secondary_psi_x(P, S2, i, b_start, b_b, b_c, b_psi, b_coef)
+            if 1 <= i < nxp - 1 and (chunk == 0 or i > first):
+                primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+                primary_psi_x(S2, P, i, c_start, c_b, c_c, c_psi, c_coef, 1, nyp - 1)
+                primary_psi_x(S2, P, i, d_start, d_b, d_c, d_psi, d_coef, 1, nyp - 1)
+                primary_psi_y(S1, P, i, g_start, g_b, g_c, g_psi, g_coef)
+                primary_psi_y(S1, P, i, h_start, h_b, h_c, h_psi, h_coef)
+    for chunk in range(1, n_chunks):  # first rows of later chunks: their S2[i-1] is ready now
+        i = chunk_starts[chunk]
+        if 1 <= i < nxp - 1:
+            primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+            primary_psi(S1, S2, P, i, x_slabs, y_slabs, 1, nyp - 1)
+
+
+# --- periodic seams ---------------------------------------------------------
+
+@njit(**_SERIAL)
+def primary_seams(P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y):
+    """P on the seam nodes of periodic axes (row 0 and/or column 0), with
+    wrapped neighbours, then their psi terms from the other axis' layers."""
+    nxp, nyp = P.shape
+    nx = nxp - 1
+    ny = nyp - 1
+    homog, ca, cb, ca_arr, cb_arr = pc
+    gxn = x_slabs[4]
+    gyn = y_slabs[4]
+    if periodic_x:  # row 0; its neighbour row -1 is row nx - 1
+        for j in range(0 if periodic_y else 1, ny):
+            jm = j - 1 if j > 0 else ny - 1
+            a = ca if homog else ca_arr[0, j]
+            b = cb if homog else cb_arr[0, j]
+            P[0, j] = a * P[0, j] + b * ((S2[0, j] - S2[nx - 1, j]) * gxn[0] - (S1[0, j] - S1[0, jm]) * gyn[j])
+        for start, b, c, psi, coef in (y_slabs[2], y_slabs[3]):
+            primary_psi_y(S1, P, 0, start, b, c, psi, coef)
+    if periodic_y:  # column 0 of the inner rows; neighbour column -1 is ny - 1
+        for i in range(1, nx if periodic_x else nxp - 1):
+            a = ca if homog else ca_arr[i, 0]
+            b = cb if homog else cb_arr[i, 0]
+            P[i, 0] = a * P[i, 0] + b * ((S2[i, 0] - S2[i - 1, 0]) * gxn[i] - (S1[i, 0] - S1[i, ny - 1]) * gyn[0])
+            for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
+                primary_psi_x(S2, P, i, start, b, c, psi, coef, 0, 1)
 
 
 @njit(**_SERIAL)
@@ -103,56 +205,6 @@ def copy_ghosts(P, periodic_x, periodic_y):
     if periodic_y:
         for i in range(nxp):
             P[i, nyp - 1] = P[i, 0]
-
-
-# --- CPML psi terms (layer slabs only) --------------------------------------
-
-@njit(**_SERIAL)
-def psi_secondary_x(P, S2, slab):
-    """x-slab rows of S2: psi <- b psi + c dP/dx;  S2 += coef psi."""
-    start, b, c, psi, coef = slab
-    for k in range(b.size):
-        i = start + k
-        bk = b[k]
-        ck = c[k]
-        for j in range(S2.shape[1]):
-            psi[k, j] = bk * psi[k, j] + ck * (P[i + 1, j] - P[i, j])
-            S2[i, j] += coef[k, j] * psi[k, j]
-
-
-@njit(**_SERIAL)
-def psi_secondary_y(P, S1, slab):
-    """y-slab columns of S1: psi <- b psi + c dP/dy;  S1 -= coef psi."""
-    start, b, c, psi, coef = slab
-    for i in range(S1.shape[0]):
-        for k in range(b.size):
-            j = start + k
-            psi[i, k] = b[k] * psi[i, k] + c[k] * (P[i, j + 1] - P[i, j])
-            S1[i, j] -= coef[i, k] * psi[i, k]
-
-
-@njit(**_SERIAL)
-def psi_primary_x(S2, P, slab, j_lo, j_hi):
-    """x-slab rows of P (never row 0): psi <- b psi + c dS2/dx;  P += coef psi."""
-    start, b, c, psi, coef = slab
-    for k in range(b.size):
-        i = start + k
-        bk = b[k]
-        ck = c[k]
-        for j in range(j_lo, j_hi):
-            psi[k, j] = bk * psi[k, j] + ck * (S2[i, j] - S2[i - 1, j])
-            P[i, j] += coef[k, j] * psi[k, j]
-
-
-@njit(**_SERIAL)
-def psi_primary_y(S1, P, slab, i_lo, i_hi):
-    """y-slab columns of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
-    start, b, c, psi, coef = slab
-    for i in range(i_lo, i_hi):
-        for k in range(b.size):
-            j = start + k
-            psi[i, k] = b[k] * psi[i, k] + c[k] * (S1[i, j] - S1[i, j - 1])
-            P[i, j] -= coef[i, k] * psi[i, k]
 
 
 # --- sources, probes, energy ------------------------------------------------
@@ -184,44 +236,18 @@ def sum_weighted_squares(A, W):
 # --- the time loop ----------------------------------------------------------
 
 @njit(**_SERIAL)
-def advance(first_step, n_steps, P, S1, S2, primary_coef, secondary_coef, edge_coef,
-            gxn, gxh, gyn, gyh, x_slabs, y_slabs,
-            periodic_x, periodic_y, edge_i, edge_j,
-            src_i, src_j, src_coef, wave, probe_i, probe_j, probe_out):
-    """Run n_steps leapfrog steps from first_step.
+def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slabs, y_slabs,
+            chunk_starts, periodic_x, periodic_y, src_i, src_j, src_coef, wave,
+            probe_i, probe_j, probe_out):
+    """Run n_steps leapfrog steps from first_step (see step_rows for the tuples).
 
-    primary_coef / secondary_coef: (homogeneous, ca, cb, ca_arrays..., cb_arrays...)
-    as built by grid.py; edge_coef: (ca, cb) arrays for the periodic seam.
-    x_slabs / y_slabs: (secondary low, secondary high, primary low, primary high).
     wave[n] is the source sample at (n + 1/2) dt; probe_out[n + 1, m]
     receives P at probe m after step n.
     """
-    nxp, nyp = P.shape
-    i_lo = 0 if periodic_x else 1
-    j_lo = 0 if periodic_y else 1
-    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = primary_coef
-    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = secondary_coef
-    e_ca, e_cb = edge_coef
-    sx_lo, sx_hi, px_lo, px_hi = x_slabs
-    sy_lo, sy_hi, py_lo, py_hi = y_slabs
     for n in range(first_step, first_step + n_steps):
-        if s_homog:
-            secondary_scalar(P, S1, S2, s_ca, s_cb, gyh, gxh)
-        else:
-            secondary_array(P, S1, S2, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
-        psi_secondary_x(P, S2, sx_lo)
-        psi_secondary_x(P, S2, sx_hi)
-        psi_secondary_y(P, S1, sy_lo)
-        psi_secondary_y(P, S1, sy_hi)
-        if p_homog:
-            primary_scalar(P, S1, S2, p_ca, p_cb, gxn, gyn)
-        else:
-            primary_array(P, S1, S2, p_ca_arr, p_cb_arr, gxn, gyn)
-        primary_edges(P, S1, S2, e_ca, e_cb, gxn, gyn, edge_i, edge_j)
-        psi_primary_x(S2, P, px_lo, j_lo, nyp - 1)
-        psi_primary_x(S2, P, px_hi, j_lo, nyp - 1)
-        psi_primary_y(S1, P, py_lo, i_lo, nxp - 1)
-        psi_primary_y(S1, P, py_hi, i_lo, nxp - 1)
+        step_rows(P, S1, S2, secondary_coef, primary_coef, x_slabs, y_slabs, chunk_starts)
+        if periodic_x or periodic_y:
+            primary_seams(P, S1, S2, primary_coef, x_slabs, y_slabs, periodic_x, periodic_y)
         add_source(P, src_i, src_j, src_coef, wave[n])
         copy_ghosts(P, periodic_x, periodic_y)
         for m in range(probe_i.size):

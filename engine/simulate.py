@@ -57,6 +57,11 @@ def default_threads(grid: YeeGrid) -> int:
     return numba.config.NUMBA_NUM_THREADS if nodes >= PARALLEL_MIN_NODES else 1
 
 
+def row_chunks(rows: int, threads: int) -> np.ndarray:
+    """Start rows of `threads` nearly equal chunks, with the end as last entry."""
+    return np.linspace(0, rows, max(1, threads) + 1).round().astype(np.int64)
+
+
 def field_energy(grid: YeeGrid, P, S1, S2) -> float:
     """Electromagnetic energy per unit length, J/m: (1/2) sum(eps E^2 + mu0 H^2) dx dy."""
     nx, ny = grid.cells
@@ -108,9 +113,8 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     snaps, snap_steps, e_steps, e_values = [], [], [], []
     peak_energy = 0.0
     step = 0
-    kernel_args = (P, S1, S2, g.primary_coef, g.secondary_coef, g.edge_coef,
-                   g.gxn, g.gxh, g.gyn, g.gyh, g.x_slabs, g.y_slabs,
-                   g.periodic_x, g.periodic_y, g.edge_i, g.edge_j,
+    kernel_args = (P, S1, S2, g.secondary_coef, g.primary_coef, g.x_slabs, g.y_slabs,
+                   row_chunks(g.shape[0], n_threads), g.periodic_x, g.periodic_y,
                    g.src_i, g.src_j, g.src_coef, wave, g.probe_i, g.probe_j, probe_out)
     kernels.advance(0, 0, *kernel_args)  # compile or load from cache outside the timing
     numba.set_num_threads(n_threads)  # per calling thread; the kernels' prange obeys it
