@@ -36,22 +36,32 @@ _ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cos
 
 @njit(**_ROW)
 def secondary_row(P, S1, S2, i, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
-    """S1[i] = ca S1 - cb dP/dy;  S2[i] = ca S2 + cb dP/dx (scalar or per-node ca, cb)."""
+    """S1[i] = ca S1 - cb dP/dy;  S2[i] = ca S2 + cb dP/dx (scalar or per-node ca, cb).
+
+    Works on 1D row views: unit-stride loops that the compiler vectorises."""
     nxp, nyp = P.shape
+    p0 = P[i]
+    s1 = S1[i]
     if homog:
         for j in range(nyp - 1):
-            S1[i, j] = ca * S1[i, j] - cb * ((P[i, j + 1] - P[i, j]) * gyh[j])
-        if i < nxp - 1:
-            g = gxh[i]
-            for j in range(nyp):
-                S2[i, j] = ca * S2[i, j] + cb * ((P[i + 1, j] - P[i, j]) * g)
+            s1[j] = ca * s1[j] - cb * ((p0[j + 1] - p0[j]) * gyh[j])
     else:
+        a1 = ca1[i]
+        b1 = cb1[i]
         for j in range(nyp - 1):
-            S1[i, j] = ca1[i, j] * S1[i, j] - cb1[i, j] * ((P[i, j + 1] - P[i, j]) * gyh[j])
-        if i < nxp - 1:
-            g = gxh[i]
+            s1[j] = a1[j] * s1[j] - b1[j] * ((p0[j + 1] - p0[j]) * gyh[j])
+    if i < nxp - 1:
+        p1 = P[i + 1]
+        s2 = S2[i]
+        g = gxh[i]
+        if homog:
             for j in range(nyp):
-                S2[i, j] = ca2[i, j] * S2[i, j] + cb2[i, j] * ((P[i + 1, j] - P[i, j]) * g)
+                s2[j] = ca * s2[j] + cb * ((p1[j] - p0[j]) * g)
+        else:
+            a2 = ca2[i]
+            b2 = cb2[i]
+            for j in range(nyp):
+                s2[j] = a2[j] * s2[j] + b2[j] * ((p1[j] - p0[j]) * g)
 
 
 @njit(**_ROW)
@@ -79,17 +89,21 @@ def secondary_psi_x(P, S2, i, start, b, c, psi, coef):
 
 @njit(**_ROW)
 def primary_row(P, S1, S2, i, homog, ca, cb, ca_arr, cb_arr, gxn, gyn):
-    """P[i] = ca P + cb (dS2/dx - dS1/dy) on the inner nodes of row i."""
+    """P[i] = ca P + cb (dS2/dx - dS1/dy) on the inner nodes of row i (1D row views)."""
     nyp = P.shape[1]
     g = gxn[i]
+    p = P[i]
+    s1 = S1[i]
+    s2 = S2[i]
+    s2m = S2[i - 1]
     if homog:
         for j in range(1, nyp - 1):
-            P[i, j] = ca * P[i, j] + cb * (
-                (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
+            p[j] = ca * p[j] + cb * ((s2[j] - s2m[j]) * g - (s1[j] - s1[j - 1]) * gyn[j])
     else:
+        a = ca_arr[i]
+        b = cb_arr[i]
         for j in range(1, nyp - 1):
-            P[i, j] = ca_arr[i, j] * P[i, j] + cb_arr[i, j] * (
-                (S2[i, j] - S2[i - 1, j]) * g - (S1[i, j] - S1[i, j - 1]) * gyn[j])
+            p[j] = a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - (s1[j] - s1[j - 1]) * gyn[j])
 
 
 @njit(**_ROW)

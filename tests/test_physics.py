@@ -235,3 +235,23 @@ def test_cpml_absorbs_outgoing_pulse(polarization):
                  boundary=Boundary.all_sides(CPML))
     r = simulate(s)
     assert r.energy[-1] < 1e-4 * r.energy.max()
+
+
+# --- threads ----------------------------------------------------------------
+
+@pytest.mark.parametrize("boundary", [
+    Boundary.all_sides(CPML),
+    Boundary(left=CPML, right=CPML, bottom=PERIODIC, top=PERIODIC),
+    Boundary(left=PERIODIC, right=PERIODIC, bottom=Side(kind="wall"), top=CPML),
+], ids=["cpml", "periodic-y", "periodic-x"])
+@pytest.mark.parametrize("polarization", ["TMz", "TEz"])
+def test_two_threads_give_the_same_bits_as_one(boundary, polarization):
+    # Splitting the rows between threads must not change one operation
+    # (common practice, no source: a parallel update is deterministic).
+    s = Scenario(dx=1e-3, dy=1e-3, nx=70, ny=50, steps=400, polarization=polarization,
+                 source=Source(x=20, y=15, f_max=12e9), boundary=boundary,
+                 blocks=(Block(30, 50, -math.inf, 12, eps_r=3.0, sigma=0.05),))
+    one = simulate(s, threads=1, keep_fields=True)
+    two = simulate(s, threads=2, keep_fields=True)
+    for a, b in zip(one.state, two.state):
+        assert np.array_equal(a, b)
