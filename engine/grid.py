@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .kernels import LANES
 from .layer import LayerTable, layer_tables
 from .scenario import Scenario
 from .units import C0, EPS0, ETA0
@@ -164,6 +165,22 @@ def build_grid(s: Scenario) -> YeeGrid:
             coef = coef_full[start:start + n, :] if along_x else coef_full[:, start:start + n]
         return np.int64(start), cast(b), cast(c), np.zeros(shape, dtype), cast(coef)
 
+    def pad_columns(rows, low: bool, first_col: int, last_col: int):
+        """Pad a y-slab to whole LANES-column blocks on its interior side, if it fits."""
+        start, b, c = rows
+        n = b.size
+        extra = (-n) % LANES
+        if n == 0 or extra == 0:
+            return rows
+        if low and start + n + extra - 1 <= last_col:
+            return start, np.concatenate([b, np.zeros(extra)]), np.concatenate([c, np.zeros(extra)])
+        if not low and start - extra >= first_col:
+            return start - extra, np.concatenate([np.zeros(extra), b]), np.concatenate([np.zeros(extra), c])
+        return rows
+
+    # S1 columns 0..NY-1 exist; P's y-psi must stay on inner columns 1..NY-1
+    y_rows = (pad_columns(y_rows[0], True, 0, NY - 1), pad_columns(y_rows[1], False, 0, NY - 1),
+              pad_columns(y_rows[2], True, 1, NY - 1), pad_columns(y_rows[3], False, 1, NY - 1))
     gxn, gxh, gyn, gyh = cast(gxn), cast(gxh), cast(gyn), cast(gyh)
     x_slabs = (slab(x_rows[0], True, cb_s2), slab(x_rows[1], True, cb_s2),
                slab(x_rows[2], True, cb_primary), slab(x_rows[3], True, cb_primary), gxn, gxh)

@@ -10,7 +10,9 @@ Shapes: P (NX+1, NY+1), S1 (NX+1, NY), S2 (NX, NY+1).  g* are 1D arrays
 1 / (kappa d) at node (n) or half-node (h) positions.  Psi lives only in the
 layer slabs, one per side and field: an x-slab is the rows start..start+n-1
 across every j, a y-slab the columns start..start+n-1 across every i, so the
-corners carry both.  A slab is the tuple (start, b, c, psi, coef).
+corners carry both.  A slab is the tuple (start, b, c, psi, coef).  y-slabs
+are padded towards the interior to whole blocks of LANES columns with
+b = c = coef = 0, which leaves those columns exactly unchanged.
 
 One step is one sweep over the rows (`step_rows`): row i of S1 and S2 with
 their psi terms, then row i of P with its psi terms.  Row i of P needs S2 of
@@ -30,6 +32,7 @@ from numba import njit, prange
 _SERIAL = dict(cache=True, nogil=True)
 _PARALLEL = dict(cache=True, nogil=True, parallel=True)
 _ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cost per row
+LANES = 16  # y-slab columns per vector block: one AVX-512 register of float32
 
 
 # --- one row of the secondaries --------------------------------------------
@@ -65,12 +68,24 @@ def secondary_row(P, S1, S2, i, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
 
 
 @njit(**_ROW)
-def secondary_psi_y(P, S1, i, start, b, c, psi, coef):
-    """Row i of a y-slab of S1: psi <- b psi + c dP/dy;  S1 -= coef psi."""
-    for k in range(b.size):
+def secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, k_lo, k_hi):
+    for k in range(k_lo, k_hi):
         j = start + k
         psi[i, k] = b[k] * psi[i, k] + c[k] * (P[i, j + 1] - P[i, j])
         S1[i, j] -= coef[i, k] * psi[i, k]
+
+
+@njit(**_ROW)
+def secondary_psi_y(P, S1, i, start, b, c, psi, coef):
+    """Row i of a y-slab of S1: psi <- b psi + c dP/dy;  S1 -= coef psi.
+
+    Runs in blocks of LANES columns with a constant trip count, which the
+    compiler turns into whole vector operations (grid.py pads the slabs)."""
+    n = b.size
+    whole = n - n % LANES
+    for k0 in range(0, whole, LANES):
+        secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, k0, k0 + LANES)
+    secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, whole, n)
 
 
 @njit(**_ROW)
@@ -119,12 +134,21 @@ def primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi):
 
 
 @njit(**_ROW)
-def primary_psi_y(S1, P, i, start, b, c, psi, coef):
-    """Row i of a y-slab of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
-    for k in range(b.size):
+def primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, k_lo, k_hi):
+    for k in range(k_lo, k_hi):
         j = start + k
         psi[i, k] = b[k] * psi[i, k] + c[k] * (S1[i, j] - S1[i, j - 1])
         P[i, j] -= coef[i, k] * psi[i, k]
+
+
+@njit(**_ROW)
+def primary_psi_y(S1, P, i, start, b, c, psi, coef):
+    """Row i of a y-slab of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
+    n = b.size
+    whole = n - n % LANES
+    for k0 in range(0, whole, LANES):
+        primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, k0, k0 + LANES)
+    primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, whole, n)
 
 
 @njit(**_SERIAL)

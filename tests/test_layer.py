@@ -82,7 +82,10 @@ def test_psi_lives_only_in_the_layer():
     NX, NY = g.cells
     sx_lo, sx_hi, px_lo, px_hi = g.x_slabs[:4]
     assert sx_lo[3].shape == sx_hi[3].shape == (6, NY + 1)  # rows of the layer, every column
-    assert g.y_slabs[3][3].shape == (NX + 1, 6)
+    # y-slabs are padded to whole vector blocks towards the interior, with zeros
+    start, b, c, psi, coef = g.y_slabs[3]
+    assert psi.shape == (NX + 1, 16) and start == NY - 16
+    assert np.all(b[:10] == 0) and np.all(c[:10] == 0) and np.all(b[10:] > 0)
     assert (sx_lo[0], sx_hi[0]) == (0, NX - 6)  # half nodes 1/2..5+1/2 and their mirror
     assert (px_lo[0], px_hi[0]) == (1, NX - 6)  # nodes 1..6 (depths 5..0); the wall stays zero
     total = sum(a[3].size for a in g.x_slabs[:4] + g.y_slabs[:4])
