@@ -14,7 +14,7 @@ corners carry both.  A slab is the tuple (start, b, c, psi, coef).  y-slabs
 are padded towards the interior to whole blocks of LANES columns with
 b = c = coef = 0, which leaves those columns exactly unchanged.
 
-One step is one sweep over the rows (`step_rows`): row i of S1 and S2 with
+One step is one sweep over the rows (`sweep_rows`): row i of S1 and S2 with
 their psi terms, then row i of P with its psi terms.  Row i of P needs S2 of
 rows i-1 and i, which are both new by then, and S2 of row i reads P of row
 i+1, which is still old: so the leapfrog order holds within one pass and the
@@ -32,6 +32,10 @@ from numba import njit, prange
 _SERIAL = dict(cache=True, nogil=True)
 _PARALLEL = dict(cache=True, nogil=True, parallel=True)
 _ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cost per row
+# The row sweep only reads and writes arrays its caller owns: without reference
+# counting on the per-row views (and with numpy's error model) the compiler keeps
+# the row loops vectorised, about twice as fast as the default.
+_SWEEP = dict(cache=True, nogil=True, error_model="numpy", _nrt=False)
 LANES = 16  # y-slab columns per vector block: one AVX-512 register of float32
 
 
@@ -95,9 +99,14 @@ def secondary_psi_x(P, S2, i, start, b, c, psi, coef):
     if 0 <= k < b.size:
         bk = b[k]
         ck = c[k]
-        for j in range(S2.shape[1]):
-            psi[k, j] = bk * psi[k, j] + ck * (P[i + 1, j] - P[i, j])
-            S2[i, j] += coef[k, j] * psi[k, j]
+        p0 = P[i]
+        p1 = P[i + 1]
+        s2 = S2[i]
+        q = psi[k]
+        w = coef[k]
+        for j in range(s2.size):
+            q[j] = bk * q[j] + ck * (p1[j] - p0[j])
+            s2[j] += w[j] * q[j]
 
 
 # --- one row of the primary --------------------------------------------------
@@ -128,9 +137,14 @@ def primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi):
     if 0 <= k < b.size:
         bk = b[k]
         ck = c[k]
+        s2 = S2[i]
+        s2m = S2[i - 1]
+        p = P[i]
+        q = psi[k]
+        w = coef[k]
         for j in range(j_lo, j_hi):
-            psi[k, j] = bk * psi[k, j] + ck * (S2[i, j] - S2[i - 1, j])
-            P[i, j] += coef[k, j] * psi[k, j]
+            q[j] = bk * q[j] + ck * (s2[j] - s2m[j])
+            p[j] += w[j] * q[j]
 
 
 @njit(**_ROW)
@@ -162,17 +176,52 @@ def primary_psi(S1, S2, P, i, x_slabs, y_slabs, j_lo, j_hi):
 
 # --- one whole step ---------------------------------------------------------
 
-@njit(**_PARALLEL)
-def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
-    """Secondaries then primary, row by row, in len(chunk_starts) - 1 parallel chunks.
+@njit(**_SWEEP)
+def sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, first, last, defer_first):
+    """Rows first..last-1 of one step: S1, S2 and their psi, then P and its psi.
 
     sc = (homog, ca, cb, ca1, cb1, ca2, cb2); pc = (homog, ca, cb, ca_arr, cb_arr);
     x_slabs = (S2 low, S2 high, P low, P high, gxn, gxh), y_slabs likewise with
-    S1 and (gyn, gyh).  Row 0 and the last row of P are walls or periodic seams,
-    done elsewhere.  The tuples are unpacked into plain arrays first because a
-    parallel loop takes arrays and scalars only.
+    S1 and (gyn, gyh).  Row 0 and the last row of P are walls or periodic
+    seams, done elsewhere.  defer_first: leave P of row `first` for
+    finish_primary_row, because the S2 row before it belongs to another chunk.
     """
     nxp, nyp = P.shape
+    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = sc
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
+    sx_lo, sx_hi, px_lo, px_hi, gxn, gxh = x_slabs
+    sy_lo, sy_hi, py_lo, py_hi, gyn, gyh = y_slabs
+    for i in range(first, last):
+        secondary_row(P, S1, S2, i, s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
+        secondary_psi_y(P, S1, i, sy_lo[0], sy_lo[1], sy_lo[2], sy_lo[3], sy_lo[4])
+        secondary_psi_y(P, S1, i, sy_hi[0], sy_hi[1], sy_hi[2], sy_hi[3], sy_hi[4])
+        if i < nxp - 1:
+            secondary_psi_x(P, S2, i, sx_lo[0], sx_lo[1], sx_lo[2], sx_lo[3], sx_lo[4])
+            secondary_psi_x(P, S2, i, sx_hi[0], sx_hi[1], sx_hi[2], sx_hi[3], sx_hi[4])
+        if 1 <= i < nxp - 1 and not (defer_first and i == first):
+            primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+            primary_psi_x(S2, P, i, px_lo[0], px_lo[1], px_lo[2], px_lo[3], px_lo[4], 1, nyp - 1)
+            primary_psi_x(S2, P, i, px_hi[0], px_hi[1], px_hi[2], px_hi[3], px_hi[4], 1, nyp - 1)
+            primary_psi_y(S1, P, i, py_lo[0], py_lo[1], py_lo[2], py_lo[3], py_lo[4])
+            primary_psi_y(S1, P, i, py_hi[0], py_hi[1], py_hi[2], py_hi[3], py_hi[4])
+
+
+@njit(**_SWEEP)
+def finish_primary_row(P, S1, S2, pc, x_slabs, y_slabs, i):
+    """P of one inner row and its psi terms (the deferred first row of a chunk)."""
+    nyp = P.shape[1]
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
+    primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, x_slabs[4], y_slabs[4])
+    primary_psi(S1, S2, P, i, x_slabs, y_slabs, 1, nyp - 1)
+
+
+@njit(**_PARALLEL)
+def sweep_chunks(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
+    """One step in len(chunk_starts) - 1 row chunks, one per thread.
+
+    A parallel loop takes arrays and scalars only, so the tuples are unpacked
+    here and rebuilt inside the loop body.
+    """
     s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = sc
     p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
     (a_start, a_b, a_c, a_psi, a_coef), (b_start, b_b, b_c, b_psi, b_coef) = x_slabs[0], x_slabs[1]
@@ -183,25 +232,28 @@ def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
     gyn, gyh = y_slabs[4], y_slabs[5]
     n_chunks = chunk_starts.size - 1
     for chunk in prange(n_chunks):
-        first = chunk_starts[chunk]
-        for i in range(first, chunk_starts[chunk + 1]):
-            secondary_row(P, S1, S2, i, s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
-            secondary_psi_y(P, S1, i, e_start, e_b, e_c, e_psi, e_coef)
-            secondary_psi_y(P, S1, i, f_start, f_b, f_c, f_psi, f_coef)
-            if i < nxp - 1:
-                secondary_psi_x(P, S2, i, a_start, a_b, a_c, a_psi, a_coef)
-                secondary_psi_x(P, S2, i, b_start, b_b, b_c, b_psi, b_coef)
-            if 1 <= i < nxp - 1 and (chunk == 0 or i > first):
-                primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
-                primary_psi_x(S2, P, i, c_start, c_b, c_c, c_psi, c_coef, 1, nyp - 1)
-                primary_psi_x(S2, P, i, d_start, d_b, d_c, d_psi, d_coef, 1, nyp - 1)
-                primary_psi_y(S1, P, i, g_start, g_b, g_c, g_psi, g_coef)
-                primary_psi_y(S1, P, i, h_start, h_b, h_c, h_psi, h_coef)
-    for chunk in range(1, n_chunks):  # first rows of later chunks: their S2[i-1] is ready now
+        xs = ((a_start, a_b, a_c, a_psi, a_coef), (b_start, b_b, b_c, b_psi, b_coef),
+              (c_start, c_b, c_c, c_psi, c_coef), (d_start, d_b, d_c, d_psi, d_coef), gxn, gxh)
+        ys = ((e_start, e_b, e_c, e_psi, e_coef), (f_start, f_b, f_c, f_psi, f_coef),
+              (g_start, g_b, g_c, g_psi, g_coef), (h_start, h_b, h_c, h_psi, h_coef), gyn, gyh)
+        sweep_rows(P, S1, S2, (s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2),
+                   (p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr), xs, ys,
+                   chunk_starts[chunk], chunk_starts[chunk + 1], chunk > 0)
+
+
+@njit(**_SERIAL)
+def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
+    """One step over every row: in one sweep, or in parallel chunks whose first
+    P rows wait until every chunk's S2 is done."""
+    nxp = P.shape[0]
+    if chunk_starts.size <= 2:
+        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, 0, nxp, False)
+        return
+    sweep_chunks(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts)
+    for chunk in range(1, chunk_starts.size - 1):
         i = chunk_starts[chunk]
         if 1 <= i < nxp - 1:
-            primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
-            primary_psi(S1, S2, P, i, x_slabs, y_slabs, 1, nyp - 1)
+            finish_primary_row(P, S1, S2, pc, x_slabs, y_slabs, i)
 
 
 # --- periodic seams ---------------------------------------------------------
