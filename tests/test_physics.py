@@ -255,3 +255,13 @@ def test_two_threads_give_the_same_bits_as_one(boundary, polarization):
     two = simulate(s, threads=2, keep_fields=True)
     for a, b in zip(one.state, two.state):
         assert np.array_equal(a, b)
+
+
+def test_reusing_a_grid_starts_from_rest():
+    # Each run starts from zero fields and zero psi (common practice, no source).
+    s = _centred("TMz", steps=150)
+    grid = build_grid(s)
+    first = simulate(s, grid=grid, keep_fields=True)
+    second = simulate(s, grid=grid, keep_fields=True)
+    for a, b in zip(first.state, second.state):
+        assert np.array_equal(a, b)
