@@ -56,10 +56,12 @@ class YeeGrid:
         return z((nx + 1, ny + 1), self.dtype), z((nx + 1, ny), self.dtype), z((nx, ny + 1), self.dtype)
 
     def interior_slice(self):
-        """Slices of the primary array covering interior nodes 0..nx, 0..ny."""
+        """Slices of the primary array covering interior nodes 0..nx, 0..ny
+        (0..n-1 along a periodic axis, whose node n repeats node 0)."""
         ox, oy = self.offset
         s = self.scenario
-        return slice(ox, ox + s.nx + 1), slice(oy, oy + s.ny + 1)
+        return (slice(ox, ox + s.nx + (0 if self.periodic_x else 1)),
+                slice(oy, oy + s.ny + (0 if self.periodic_y else 1)))
 
 
 def _overlap(centres: np.ndarray, lo: float, hi: float) -> np.ndarray:
@@ -190,12 +192,10 @@ def build_grid(s: Scenario) -> YeeGrid:
     px, py = bnd.periodic_x, bnd.periodic_y
     src = s.source
     si, sj = ox + src.x, oy + src.y
-    if src.line == "y":
-        js = np.arange(0, NY) if py else np.arange(oy, oy + s.ny + 1)
-        nodes = [(si, j) for j in js]
+    if src.line == "y":  # the axis is periodic (validated): every distinct node
+        nodes = [(si, j) for j in range(NY)]
     elif src.line == "x":
-        is_ = np.arange(0, NX) if px else np.arange(ox, ox + s.nx + 1)
-        nodes = [(i, sj) for i in is_]
+        nodes = [(i, sj) for i in range(NX)]
     else:
         nodes = [(si, sj)]
     src_i = np.array([n[0] for n in nodes], dtype=np.int64)

@@ -94,7 +94,8 @@ class Source:
     magnetic current (TEz), with the pulse designed from f_min..f_max.
 
     x, y: interior node; line: "" for a point, "y" for a column filling all y
-    at x (a plane wave when bottom/top are periodic), "x" for a row at y.
+    at x, "x" for a row filling all x at y: a plane wave, so the axis along
+    the line must be periodic.
     amplitude: current in A (TMz); in TEz the magnetic current is eta0 times it
     in V, which makes the two polarizations exact duals.
     """
@@ -353,6 +354,10 @@ class Scenario:
             names.add(p.name)
             self._check_inside(f"probe[{p.name}]", p.x, p.y)
         self._check_inside("source", self.source.x, self.source.y)
+        if self.source.line == "y" and not self.boundary.periodic_y:
+            raise ScenarioError("source.line", "y", "'y' only when bottom and top are periodic (a plane wave)")
+        if self.source.line == "x" and not self.boundary.periodic_x:
+            raise ScenarioError("source.line", "x", "'x' only when left and right are periodic (a plane wave)")
         nodes = (self.total_cells_x + 1) * (self.total_cells_y + 1)
         if nodes > MAX_GRID_NODES:
             raise ScenarioError("nx", self.nx, f"a grid of at most {MAX_GRID_NODES:,} nodes "

@@ -28,7 +28,8 @@ class RunResult:
     probes[name]: the primary field (Ez in V/m for TMz, Hz in A/m for TEz) at
     times[n] = n dt, n = 0..steps.  snapshots[k]: the primary field on the
     whole grid (layers included) after snapshot_steps[k] steps.  energy: field
-    energy per unit length (J/m) at energy_steps.
+    energy per unit length (J/m) at energy_steps, and interior_energy the
+    part of it on the interior nodes (the rest is in the layers).
     """
 
     scenario: Scenario
@@ -40,6 +41,7 @@ class RunResult:
     snapshots: np.ndarray
     energy_steps: np.ndarray
     energy: np.ndarray
+    interior_energy: np.ndarray
     elapsed_s: float
     threads: int
     fields: dict[str, np.ndarray] = field(default_factory=dict)
@@ -62,18 +64,25 @@ def row_chunks(rows: int, threads: int) -> np.ndarray:
     return np.linspace(0, rows, max(1, threads) + 1).round().astype(np.int64)
 
 
-def field_energy(grid: YeeGrid, P, S1, S2) -> float:
-    """Electromagnetic energy per unit length, J/m: (1/2) sum(eps E^2 + mu0 H^2) dx dy."""
+def field_energy(grid: YeeGrid, P, S1, S2, window: tuple[slice, slice] | None = None) -> float:
+    """Electromagnetic energy per unit length, J/m: (1/2) sum(eps E^2 + mu0 H^2) dx dy,
+    over the whole grid or over the nodes of `window` (and the S1/S2 between them)."""
     nx, ny = grid.cells
-    ux = nx if grid.periodic_x else nx + 1  # skip ghost copies on periodic axes
-    uy = ny if grid.periodic_y else ny + 1
-    Pv, S1v, S2v = P[:ux, :uy], S1[:ux, :], S2[:, :uy]
+    if window is None:
+        ux = nx if grid.periodic_x else nx + 1  # skip ghost copies on periodic axes
+        uy = ny if grid.periodic_y else ny + 1
+        wx, wy = slice(0, ux), slice(0, uy)
+    else:
+        wx, wy = window
+    hx = slice(wx.start, min(wx.stop, nx))  # half nodes between the window's nodes
+    hy = slice(wy.start, min(wy.stop, ny))
+    Pv, S1v, S2v = P[wx, wy], S1[wx, hy], S2[hx, wy]
     if grid.electric_primary:
-        total = (kernels.sum_weighted_squares(Pv, grid.eps_p[:ux, :uy])
+        total = (kernels.sum_weighted_squares(Pv, grid.eps_p[wx, wy])
                  + kernels.sum_squares(S1v) + kernels.sum_squares(S2v))
     else:
-        total = (kernels.sum_squares(Pv) + kernels.sum_weighted_squares(S1v, grid.eps_1[:ux, :])
-                 + kernels.sum_weighted_squares(S2v, grid.eps_2[:, :uy]))
+        total = (kernels.sum_squares(Pv) + kernels.sum_weighted_squares(S1v, grid.eps_1[wx, hy])
+                 + kernels.sum_weighted_squares(S2v, grid.eps_2[hx, wy]))
     s = grid.scenario
     return 0.5 * EPS0 * s.dx * s.dy * total
 
@@ -82,10 +91,12 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
              progress: Callable[[int, int], bool | None] | None = None,
              check_every: int = 100, threads: int | None = None,
              keep_fields: bool = False, grid: YeeGrid | None = None,
-             initial: np.ndarray | None = None) -> RunResult:
+             initial: np.ndarray | None = None,
+             snapshot_window: tuple[slice, slice] | None = None) -> RunResult:
     """Run `scenario` for scenario.steps steps.
 
-    snapshot_every: store the primary field every k steps (0: none).
+    snapshot_every: store the primary field every k steps (0: none), on the
+    whole grid or on the grid nodes of snapshot_window.
     progress(step, total): called every `check_every` steps; return False to
     cancel (raises RunCancelled).  The divergence guard checks the field
     energy at the same cadence and raises DivergenceError naming the step.
@@ -114,7 +125,9 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     probe_out = np.zeros((s.steps + 1, g.probe_i.size), dtype=g.dtype)
     probe_out[0] = P[g.probe_i, g.probe_j]
     source_off_step = int(math.ceil(pulse.end_time / dt))
-    snaps, snap_steps, e_steps, e_values = [], [], [], []
+    snaps, snap_steps, e_steps, e_values, e_inside = [], [], [], [], []
+    window = snapshot_window if snapshot_window is not None else (slice(None), slice(None))
+    interior = g.interior_slice()
     peak_energy = 0.0
     step = 0
     kernel_args = (P, S1, S2, g.secondary_coef, g.primary_coef, g.x_slabs, g.y_slabs,
@@ -131,12 +144,13 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
         kernels.advance(step, stop - step, *kernel_args)
         step = stop
         if snapshot_every and step % snapshot_every == 0:
-            snaps.append(P.copy())
+            snaps.append(P[window].copy())
             snap_steps.append(step)
         if step % check_every == 0 or step == s.steps:
             energy = field_energy(g, P, S1, S2)
             e_steps.append(step)
             e_values.append(energy)
+            e_inside.append(field_energy(g, P, S1, S2, interior))
             if not math.isfinite(energy):
                 raise DivergenceError(step, "the fields are no longer finite")
             if energy > ENERGY_ABSOLUTE_LIMIT:
@@ -154,7 +168,7 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     quantity = "Ez (V/m)" if g.electric_primary else "Hz (A/m)"
     probes = {p.name: probe_out[:, m].astype(float) * to_si for m, p in enumerate(s.probes)}
     snapshots = (np.stack(snaps).astype(float) * to_si if snaps
-                 else np.zeros((0,) + g.shape))
+                 else np.zeros((0,) + P[window].shape))
     fields = {}
     if keep_fields:
         if g.electric_primary:
@@ -164,5 +178,5 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     return RunResult(scenario=s, grid=g, times=np.arange(s.steps + 1) * dt, probes=probes,
                      quantity=quantity, snapshot_steps=np.asarray(snap_steps, dtype=int),
                      snapshots=snapshots, energy_steps=np.asarray(e_steps, dtype=int),
-                     energy=np.asarray(e_values), elapsed_s=elapsed, threads=n_threads, fields=fields,
+                     energy=np.asarray(e_values), interior_energy=np.asarray(e_inside), elapsed_s=elapsed, threads=n_threads, fields=fields,
                      state=(P, S1, S2) if keep_fields else ())

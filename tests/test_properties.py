@@ -47,6 +47,8 @@ def scenarios(draw):
                          y0=draw(st.floats(-30, 20)), y1=draw(st.one_of(st.just(math.inf), st.floats(21, 60))),
                          eps_r=draw(st.floats(1.0, 50.0)), sigma=draw(st.floats(0.0, 100.0)))
                    for _ in range(draw(st.integers(0, 2))))
+    boundary = draw(boundaries())
+    lines = [""] + (["y"] if boundary.periodic_y else []) + (["x"] if boundary.periodic_x else [])
     return Scenario(dx=d, dy=d * draw(st.floats(0.5, 2.0)), nx=nx, ny=ny,
                     steps=draw(st.integers(1, 150)), courant=draw(st.floats(0.05, 1.0)),
                     eps_r=draw(st.floats(1.0, 12.0)), sigma=draw(st.floats(0.0, 5.0)),
@@ -54,9 +56,9 @@ def scenarios(draw):
                     precision=draw(st.sampled_from(["float32", "float64"])),
                     source=Source(x=draw(st.integers(0, nx)), y=draw(st.integers(0, ny)), f_max=f_max,
                                   f_min=f_min, waveform=waveform,
-                                  line=draw(st.sampled_from(["", "", "x", "y"]))),
+                                  line=draw(st.sampled_from(lines))),
                     probes=(Probe("p", draw(st.integers(0, nx)), draw(st.integers(0, ny))),),
-                    blocks=blocks, boundary=draw(boundaries()))
+                    blocks=blocks, boundary=boundary)
 
 
 @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])

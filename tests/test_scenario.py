@@ -91,6 +91,12 @@ def test_source_band_is_checked():
     assert err.value.field == "source.waveform"
 
 
+def test_line_source_needs_a_periodic_axis():
+    with pytest.raises(ScenarioError) as err:
+        basic(source=Source(x=25, y=20, f_max="10 GHz", line="y"))
+    assert err.value.field == "source.line"
+
+
 def test_coarse_grid_warns():
     # Fewer than 10 cells per wavelength at f_max (common practice, no source).
     with warnings.catch_warnings(record=True) as caught:

@@ -1,0 +1,281 @@
+"""Measure a layer: isolate its echo against the reference and score it.
+
+    m = measure(scenario)                 # everything
+    m = measure(scenario, parts={"probes"})   # only what one plot needs
+
+Scores (all amplitudes relative to the reference, in dB):
+- peak error per probe: 20 log10(max_t |test - ref| / max_t |ref|);
+- global error: 10 log10(sum (test - ref)^2 / sum ref^2) over the interior
+  nodes at the frame steps of the run;
+- error versus time per probe, floored at FLOOR_DB;
+- reflection spectrum per probe |FFT(test - ref)| / |FFT(ref)| over
+  f_min..f_max, masked where the reference is more than 40 dB below its peak;
+- reflection versus incidence angle: each probe is given the specular angle
+  of its nearest CPML face (image source); the incident field is carried from
+  the probe's distance to the image distance with the 2D Green's function
+  H0^(2)(k r) (scipy.special.hankel2) before the ratio is taken, and the ratio
+  is averaged over the band weighted by the incident spectrum;
+- for a plane wave (line source across a periodic axis), the normal-incidence
+  reflection spectrum, directly comparable with theory.layer_reflection;
+- a late-time check of field energy for instability.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.special import hankel2
+
+from .errors import DivergenceError
+from .reference import Reference, ReferenceCache, frame_every, reference
+from .scenario import SIDES, Boundary, Scenario, Side
+from .simulate import simulate
+from .theory import layer_reflection
+from .units import C0
+
+ALL_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots", "late_time"})
+FLOOR_DB = -200.0
+SPECTRUM_MASK_DB = -40.0
+LATE_STEPS = 20_000
+GROWTH_LIMIT_DB = 1.0  # per 1000 steps, over the last half of the late run
+
+
+def to_db(ratio, floor: float = FLOOR_DB):
+    """20 log10 of an amplitude ratio, with a floor."""
+    with np.errstate(divide="ignore"):
+        return np.maximum(20.0 * np.log10(np.abs(ratio)), floor)
+
+
+@dataclass
+class AngleCurve:
+    names: list
+    sides: list
+    angles_deg: np.ndarray
+    measured_db: np.ndarray
+    theory_db: np.ndarray
+
+
+@dataclass
+class LateTime:
+    """Energy long after the pulse: status 'stable', 'growing' or 'diverged'."""
+
+    status: str
+    steps: int
+    growth_db_per_1000: float
+    final_db: float  # total energy at the end relative to its peak, dB (10 log10)
+    energy_steps: np.ndarray
+    interior_energy: np.ndarray
+    layer_energy: np.ndarray
+    message: str = ""
+
+
+@dataclass
+class Measurement:
+    scenario: Scenario
+    times: np.ndarray
+    peak_db: dict = field(default_factory=dict)
+    error_db: dict = field(default_factory=dict)
+    worst_peak_db: float = math.nan
+    worst_probe: str = ""
+    global_db: float = math.nan
+    freqs: np.ndarray | None = None
+    spectra: dict = field(default_factory=dict)
+    angles: AngleCurve | None = None
+    plane_wave: dict | None = None  # {"freqs", "measured", "theory"} amplitude ratios
+    frame_steps: np.ndarray | None = None
+    total_frames: np.ndarray | None = None  # whole test grid
+    reflected_frames: np.ndarray | None = None  # interior only: test - ref
+    late: LateTime | None = None
+    test_s: float = 0.0
+    reference_s: float = 0.0
+    reference_cached: bool = False
+    elapsed_s: float = 0.0
+
+
+def _with_layer(s: Scenario, layer) -> Scenario:
+    if layer is None:
+        return s
+    if isinstance(layer, Boundary):
+        return s.with_changes(boundary=layer)
+    if isinstance(layer, Side):
+        b = s.boundary
+        sides = {n: (getattr(b, n) if getattr(b, n).kind == "periodic" else layer) for n in SIDES}
+        return s.with_changes(boundary=Boundary(**sides))
+    raise TypeError("layer must be a Side, a Boundary or None")
+
+
+def _nearest_face(s: Scenario, x: int, y: int):
+    """(side, distance to the face, offset along it) of the nearest CPML face."""
+    faces = {"left": (x, y), "right": (s.nx - x, y), "bottom": (y, x), "top": (s.ny - y, x)}
+    best = None
+    for name, (dist, along) in faces.items():
+        if getattr(s.boundary, name).kind != "cpml":
+            continue
+        if best is None or dist < best[1]:
+            best = (name, dist, along)
+    return best
+
+
+def _spectrum_axis(s: Scenario):
+    n = 1 << int(math.ceil(math.log2(4 * (s.steps + 1))))
+    freqs = np.fft.rfftfreq(n, s.dt)
+    band = (freqs >= max(s.source.f_min, freqs[1])) & (freqs <= s.source.f_max)
+    return n, freqs, band
+
+
+def late_time_check(s: Scenario, steps: int = LATE_STEPS) -> LateTime:
+    """Run long after the pulse and report the energy trend."""
+    long = s.with_changes(steps=steps, probes=())
+    check = max(100, steps // 200)
+    try:
+        r = simulate(long, check_every=check)
+    except DivergenceError as exc:
+        return LateTime(status="diverged", steps=steps, growth_db_per_1000=math.inf, final_db=math.inf,
+                        energy_steps=np.zeros(0, int), interior_energy=np.zeros(0), layer_energy=np.zeros(0),
+                        message=str(exc))
+    total = r.energy
+    peak = total.max() if total.size else 0.0
+    half = r.energy_steps >= steps // 2
+    level = 10 * np.log10(np.maximum(total, 1e-300 * max(peak, 1e-300)) / max(peak, 1e-300))
+    if half.sum() >= 2:
+        slope = np.polyfit(r.energy_steps[half], level[half], 1)[0] * 1000.0
+    else:
+        slope = 0.0
+    status = "growing" if slope > GROWTH_LIMIT_DB else "stable"
+    message = (f"energy grows {slope:.2g} dB per 1000 steps late in the run" if status == "growing"
+               else f"energy falls to {level[-1]:.0f} dB of its peak and stays there")
+    return LateTime(status=status, steps=steps, growth_db_per_1000=float(slope), final_db=float(level[-1]),
+                    energy_steps=r.energy_steps, interior_energy=r.interior_energy,
+                    layer_energy=np.maximum(total - r.interior_energy, 0.0), message=message)
+
+
+def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: ReferenceCache | None = None,
+            late_steps: int = LATE_STEPS, threads: int | None = None) -> Measurement:
+    """Measure the layer of `scenario` (or `layer` put on its non-periodic sides).
+
+    parts: any of ALL_PARTS; the headline scores ('probes') are always made.
+    """
+    t_start = time.perf_counter()
+    s = _with_layer(scenario, layer)
+    parts = set(parts) | {"probes"}
+    unknown = parts - ALL_PARTS
+    if unknown:
+        raise ValueError(f"unknown parts {sorted(unknown)}; allowed: {sorted(ALL_PARTS)}")
+    cache_before = dict((cache or _default_cache()).hits)
+    ref: Reference = reference(s, cache)
+    cached = (cache or _default_cache()).hits["computed"] == cache_before["computed"]
+    every = frame_every(s)
+    want_frames = bool(parts & {"global", "snapshots"})
+    run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads)
+    m = Measurement(scenario=s, times=run.times, test_s=run.elapsed_s,
+                    reference_s=0.0 if cached else ref.elapsed_s, reference_cached=cached)
+
+    # per-probe scores
+    errors = {}
+    for p in s.probes:
+        test, refp = run.probes[p.name], ref.probes[p.name]
+        err = test - refp
+        errors[p.name] = err
+        scale = np.abs(refp).max()
+        m.peak_db[p.name] = float(to_db(np.abs(err).max() / scale)) if scale > 0 else math.nan
+        m.error_db[p.name] = to_db(err / scale) if scale > 0 else np.full(err.shape, FLOOR_DB)
+    finite = {k: v for k, v in m.peak_db.items() if math.isfinite(v)}
+    if finite:
+        m.worst_probe = max(finite, key=finite.get)
+        m.worst_peak_db = finite[m.worst_probe]
+
+    if want_frames:
+        g = run.grid
+        wx, wy = g.interior_slice()
+        test_inside = run.snapshots[:, wx, wy]
+        ref_frames = ref.frames.astype(float)
+        reflected = test_inside - ref_frames
+        total = float(np.sum(ref_frames**2))
+        if "global" in parts and total > 0:
+            m.global_db = float(10 * np.log10(max(float(np.sum(reflected**2)) / total, 10 ** (FLOOR_DB / 10))))
+        if "snapshots" in parts:
+            m.frame_steps = run.snapshot_steps
+            m.total_frames = run.snapshots
+            m.reflected_frames = reflected
+
+    if parts & {"spectra", "angles"}:
+        n, freqs, band = _spectrum_axis(s)
+        ref_spectra = {p.name: np.fft.rfft(ref.probes[p.name], n) for p in s.probes}
+        err_spectra = {p.name: np.fft.rfft(errors[p.name], n) for p in s.probes}
+        if "spectra" in parts:
+            m.freqs = freqs[band]
+            for p in s.probes:
+                rs = np.abs(ref_spectra[p.name][band])
+                ratio = np.abs(err_spectra[p.name][band]) / np.where(rs > 0, rs, np.inf)
+                masked = rs < np.abs(ref_spectra[p.name]).max() * 10 ** (SPECTRUM_MASK_DB / 20)
+                m.spectra[p.name] = np.where(masked, np.nan, ratio)
+            if s.source.line and s.probes:
+                m.plane_wave = _plane_wave(s, freqs[band], m.spectra)
+        if "angles" in parts and not s.source.line:
+            m.angles = _angle_curve(s, freqs, band, ref_spectra, err_spectra)
+
+    if "late_time" in parts:
+        m.late = late_time_check(s, late_steps)
+    m.elapsed_s = time.perf_counter() - t_start
+    return m
+
+
+def _default_cache() -> ReferenceCache:
+    from .reference import DEFAULT_CACHE
+    return DEFAULT_CACHE
+
+
+def _plane_wave(s: Scenario, freqs, spectra) -> dict:
+    """Normal-incidence reflection for a line source across a periodic axis."""
+    first = s.probes[0]
+    face = _nearest_face(s, first.x, first.y)
+    theory = layer_reflection(s, face[0], freqs, 0.0) if face else np.full(freqs.shape, np.nan)
+    return {"probe": first.name, "side": face[0] if face else "", "freqs": freqs,
+            "measured": spectra[first.name], "theory": theory}
+
+
+def _angle_curve(s: Scenario, freqs, band, ref_spectra, err_spectra) -> AngleCurve:
+    src = s.source
+    k = 2 * math.pi * freqs[band] * math.sqrt(s.eps_r) / C0
+    names, sides, angles, measured, theory = [], [], [], [], []
+    for p in s.probes:
+        face = _nearest_face(s, p.x, p.y)
+        if face is None:
+            continue
+        side, d_probe, along_probe = face
+        d_src, along_src = _nearest_face_distance(s, side, src.x, src.y)
+        normal = d_probe + d_src
+        tangential = abs(along_probe - along_src)
+        r_img = math.hypot(normal, tangential) * _cell(s, side)
+        r_dir = math.hypot(p.x - src.x, p.y - src.y) * math.hypot(s.dx, s.dy) / math.sqrt(2) \
+            if s.dx == s.dy else math.hypot((p.x - src.x) * s.dx, (p.y - src.y) * s.dy)
+        if r_dir == 0 or r_img == 0:
+            continue
+        carry = np.abs(hankel2(0, k * r_img) / hankel2(0, k * r_dir))
+        incident = np.abs(ref_spectra[p.name][band]) * carry
+        weight = incident**2
+        if weight.sum() == 0:
+            continue
+        reflected = np.abs(err_spectra[p.name][band])
+        angle = math.atan2(tangential, normal)
+        r_theory = layer_reflection(s, side, freqs[band], angle)
+        names.append(p.name)
+        sides.append(side)
+        angles.append(math.degrees(angle))
+        measured.append(float(10 * np.log10((reflected**2).sum() / weight.sum())))
+        theory.append(float(10 * np.log10(max((r_theory**2 * weight).sum() / weight.sum(), 1e-300))))
+    order = np.argsort(angles)
+    pick = lambda seq: [seq[i] for i in order]
+    return AngleCurve(names=pick(names), sides=pick(sides), angles_deg=np.asarray(angles)[order],
+                      measured_db=np.asarray(measured)[order], theory_db=np.asarray(theory)[order])
+
+
+def _nearest_face_distance(s: Scenario, side: str, x: int, y: int):
+    return {"left": (x, y), "right": (s.nx - x, y), "bottom": (y, x), "top": (s.ny - y, x)}[side]
+
+
+def _cell(s: Scenario, side: str) -> float:
+    return s.dx if side in ("left", "right") else s.dy

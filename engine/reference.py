@@ -1,0 +1,201 @@
+"""The reflection-free reference run, and its caches.
+
+The reference grid has the same interior, materials, source and probes as
+the scenario, with every non-periodic side moved so far out that nothing can
+come back within the run.  On the Yee grid a change spreads by at most one
+node per step, and the source sits in the interior, so an outer wall more
+than steps/2 cells beyond the interior cannot touch it: the interior field is
+exactly that of an unbounded grid.  It does not depend on the layer, so it is
+cached in memory (LRU) and on disk, keyed on Scenario.reference_key().
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+
+from .scenario import Block, Boundary, Scenario, Side
+from .simulate import simulate
+
+FORMAT_VERSION = 1  # bump when the stored arrays or their meaning change
+MEMORY_ENTRIES = 8
+
+
+@dataclass(frozen=True)
+class Reference:
+    """Reference series on the scenario's own interior.
+
+    probes[name]: the primary field at times n dt, n = 0..steps (SI units);
+    frames: interior primary field after frame_steps[k] steps.
+    """
+
+    key: str
+    probes: dict
+    frame_steps: np.ndarray
+    frames: np.ndarray
+    elapsed_s: float
+    margin: tuple[int, int]
+
+
+def frame_every(s: Scenario) -> int:
+    """Cadence of interior frames: about 100 per run, at most ~200 MB of them."""
+    nodes = (s.nx + 1) * (s.ny + 1)
+    frames = max(4, min(100, int(2e8 / (8 * nodes))))
+    return max(1, math.ceil(s.steps / frames))
+
+
+def margin_cells(s: Scenario) -> int:
+    """Cells between the interior and the reference's wall: more than steps / 2."""
+    return s.steps // 2 + 2
+
+
+def reference_scenario(s: Scenario) -> tuple[Scenario, tuple[int, int]]:
+    """The unbounded stand-in for `s` and the shift of its interior (cells).
+
+    Blocks are kept as they are inside the test grid; one that reaches the
+    test grid's outer wall goes on to infinity, as a substrate leaving the
+    grid does; parts beyond the test grid do not exist in the problem.
+    """
+    b = s.boundary
+    m = margin_cells(s)
+    mx = 0 if b.periodic_x else m
+    my = 0 if b.periodic_y else m
+    lo_x, hi_x = -b.left.layer_cells, s.nx + b.right.layer_cells
+    lo_y, hi_y = -b.bottom.layer_cells, s.ny + b.top.layer_cells
+    blocks = []
+    for blk in s.blocks:
+        x0, x1, y0, y1 = blk.x0, blk.x1, blk.y0, blk.y1
+        if not b.periodic_x:
+            x0, x1 = max(x0, lo_x), min(x1, hi_x)
+            if x0 >= x1:
+                continue
+            x0 = -math.inf if x0 <= lo_x else x0 + mx
+            x1 = math.inf if x1 >= hi_x else x1 + mx
+        if not b.periodic_y:
+            y0, y1 = max(y0, lo_y), min(y1, hi_y)
+            if y0 >= y1:
+                continue
+            y0 = -math.inf if y0 <= lo_y else y0 + my
+            y1 = math.inf if y1 >= hi_y else y1 + my
+        blocks.append(Block(x0, x1, y0, y1, blk.eps_r, blk.sigma, blk.name))
+    wall = Side(kind="wall")
+    periodic = Side(kind="periodic")
+    boundary = Boundary(left=periodic if b.periodic_x else wall, right=periodic if b.periodic_x else wall,
+                        bottom=periodic if b.periodic_y else wall, top=periodic if b.periodic_y else wall)
+    src = s.source
+    ref = replace(s, nx=s.nx + 2 * mx, ny=s.ny + 2 * my, blocks=tuple(blocks), boundary=boundary,
+                  source=replace(src, x=src.x + mx, y=src.y + my),
+                  probes=tuple(replace(p, x=p.x + mx, y=p.y + my) for p in s.probes))
+    return ref, (mx, my)
+
+
+def compute_reference(s: Scenario) -> Reference:
+    """Run the reference of `s` (no caching)."""
+    ref, (mx, my) = reference_scenario(s)
+    window = (slice(mx, mx + s.nx + (0 if s.boundary.periodic_x else 1)),
+              slice(my, my + s.ny + (0 if s.boundary.periodic_y else 1)))
+    r = simulate(ref, snapshot_every=frame_every(s), snapshot_window=window)
+    return Reference(key=s.reference_key(), probes=r.probes, frame_steps=r.snapshot_steps,
+                     frames=r.snapshots.astype(s.precision), elapsed_s=r.elapsed_s, margin=(mx, my))
+
+
+# --- caches ---------------------------------------------------------------
+
+def cache_dir() -> Path:
+    """Where references are kept on disk: QUIETLAYER_CACHE_DIR or the user's cache
+    directory; safe to delete at any time."""
+    root = os.environ.get("QUIETLAYER_CACHE_DIR")
+    if not root:
+        import platformdirs
+        root = platformdirs.user_cache_dir("quietlayer")
+    return Path(root) / f"reference-v{FORMAT_VERSION}"
+
+
+def _save(path: Path, ref: Reference) -> None:
+    """Write to a temporary name in the same folder, then rename: a crash
+    leaves either the old file or the new one, never half of one."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    names = list(ref.probes)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".npz")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            np.savez(fh, key=np.array(ref.key), names=np.array(names, dtype=object).astype(str),
+                     probes=np.stack([ref.probes[n] for n in names]) if names else np.zeros((0, 0)),
+                     frame_steps=ref.frame_steps, frames=ref.frames,
+                     elapsed_s=np.array(ref.elapsed_s), margin=np.array(ref.margin))
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def _load(path: Path, key: str) -> Reference | None:
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            if str(z["key"]) != key:
+                return None
+            names = [str(n) for n in z["names"]]
+            probes = {n: z["probes"][i] for i, n in enumerate(names)}
+            return Reference(key=key, probes=probes, frame_steps=z["frame_steps"], frames=z["frames"],
+                             elapsed_s=float(z["elapsed_s"]), margin=tuple(int(v) for v in z["margin"]))
+    except (OSError, ValueError, KeyError, EOFError):
+        return None  # missing or unreadable: compute it again
+
+
+class ReferenceCache:
+    """Memory LRU in front of the disk store; thread-safe."""
+
+    def __init__(self, entries: int = MEMORY_ENTRIES, use_disk: bool = True):
+        self.entries = entries
+        self.use_disk = use_disk
+        self._memory: OrderedDict[str, Reference] = OrderedDict()
+        self._lock = threading.Lock()
+        self.hits = {"memory": 0, "disk": 0, "computed": 0}
+
+    def get(self, s: Scenario) -> Reference:
+        key = s.reference_key()
+        with self._lock:
+            if key in self._memory:
+                self._memory.move_to_end(key)
+                self.hits["memory"] += 1
+                return self._memory[key]
+        path = cache_dir() / f"{key}.npz"
+        ref = _load(path, key) if self.use_disk else None
+        if ref is not None:
+            self.hits["disk"] += 1
+        else:
+            ref = compute_reference(s)
+            self.hits["computed"] += 1
+            if self.use_disk:
+                try:
+                    _save(path, ref)
+                except OSError:
+                    pass  # a read-only cache only costs time
+        with self._lock:
+            self._memory[key] = ref
+            self._memory.move_to_end(key)
+            while len(self._memory) > self.entries:
+                self._memory.popitem(last=False)
+        return ref
+
+    def clear_memory(self) -> None:
+        with self._lock:
+            self._memory.clear()
+
+
+DEFAULT_CACHE = ReferenceCache()
+
+
+def reference(s: Scenario, cache: ReferenceCache | None = None) -> Reference:
+    """The reference of `s`, from the cache when it is there."""
+    return (cache or DEFAULT_CACHE).get(s)
