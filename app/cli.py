@@ -30,14 +30,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"quietlayer {_version()}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
-    demo = commands.add_parser("demo", help="run the built-in demo scenario (or a file) and print its figures")
+    demo = commands.add_parser("demo", help="measure the layer of the built-in demo scenario (or a file)")
     demo.add_argument("--scenario", metavar="FILE.toml", help="a scenario file instead of the demo")
     return parser
 
 
 def _run_demo(path: str | None) -> int:
     from quietlayer.assets import preset_path
-    from quietlayer.engine import Scenario, ScenarioError, simulate
+    from quietlayer.engine import Scenario, ScenarioError
+    from quietlayer.engine.measure import measure
 
     try:
         text = open(path, encoding="utf-8").read() if path else preset_path("demo").read_text("utf-8")
@@ -48,17 +49,20 @@ def _run_demo(path: str | None) -> int:
     except ScenarioError as exc:
         print(f"quietlayer: {path or 'demo'}: {exc}", file=sys.stderr)
         return 2
-    result = simulate(scenario)
-    nx, ny = result.grid.cells
-    print(f"{scenario.title or path}")
-    print(f"  grid {nx} x {ny} cells with layers, {scenario.steps} steps, dt = {scenario.dt * 1e12:.4g} ps, "
-          f"{scenario.cells_per_wavelength:.1f} cells per wavelength at f_max")
-    for name, series in result.probes.items():
-        print(f"  probe {name!r}: peak |{result.quantity}| = {abs(series).max():.4g}")
-    left = result.energy[-1] / result.energy.max()
-    print(f"  energy left in the grid at the end: {left:.3g} of its peak")
-    print(f"  run time {result.elapsed_s * 1e3:.1f} ms ({result.mcells_per_s:.0f} Mcells/s, "
-          f"{result.threads} thread{'s' if result.threads > 1 else ''})")
+    result = measure(scenario)
+    s = result.scenario
+    print(s.title or path)
+    print(f"  {s.nx} x {s.ny} interior cells, {s.steps} steps, dt = {s.dt * 1e12:.4g} ps, "
+          f"{s.cells_per_wavelength:.1f} cells per wavelength at f_max, {s.polarization}, {s.precision}")
+    print(f"  {'probe':<16}{'peak error':>12}")
+    for name, value in result.peak_db.items():
+        print(f"  {name:<16}{value:>9.1f} dB")
+    print(f"  worst peak error {result.worst_peak_db:.1f} dB ({result.worst_probe}); "
+          f"global error {result.global_db:.1f} dB")
+    if result.late is not None:
+        print(f"  late-time check ({result.late.steps} steps): {result.late.status}, {result.late.message}")
+    source = "cached" if result.reference_cached else f"computed in {result.reference_s * 1e3:.0f} ms"
+    print(f"  test run {result.test_s * 1e3:.0f} ms, reference {source}, all {result.elapsed_s:.2f} s")
     print(CAUTION)
     return 0
 

@@ -71,20 +71,10 @@ def reference_scenario(s: Scenario) -> tuple[Scenario, tuple[int, int]]:
     lo_y, hi_y = -b.bottom.layer_cells, s.ny + b.top.layer_cells
     blocks = []
     for blk in s.blocks:
-        x0, x1, y0, y1 = blk.x0, blk.x1, blk.y0, blk.y1
-        if not b.periodic_x:
-            x0, x1 = max(x0, lo_x), min(x1, hi_x)
-            if x0 >= x1:
-                continue
-            x0 = -math.inf if x0 <= lo_x else x0 + mx
-            x1 = math.inf if x1 >= hi_x else x1 + mx
-        if not b.periodic_y:
-            y0, y1 = max(y0, lo_y), min(y1, hi_y)
-            if y0 >= y1:
-                continue
-            y0 = -math.inf if y0 <= lo_y else y0 + my
-            y1 = math.inf if y1 >= hi_y else y1 + my
-        blocks.append(Block(x0, x1, y0, y1, blk.eps_r, blk.sigma, blk.name))
+        xs = (blk.x0, blk.x1) if b.periodic_x else _extend(blk.x0, blk.x1, lo_x, hi_x, mx)
+        ys = (blk.y0, blk.y1) if b.periodic_y else _extend(blk.y0, blk.y1, lo_y, hi_y, my)
+        if xs is not None and ys is not None:
+            blocks.append(Block(xs[0], xs[1], ys[0], ys[1], blk.eps_r, blk.sigma, blk.name))
     wall = Side(kind="wall")
     periodic = Side(kind="periodic")
     boundary = Boundary(left=periodic if b.periodic_x else wall, right=periodic if b.periodic_x else wall,
@@ -94,6 +84,15 @@ def reference_scenario(s: Scenario) -> tuple[Scenario, tuple[int, int]]:
                   source=replace(src, x=src.x + mx, y=src.y + my),
                   probes=tuple(replace(p, x=p.x + mx, y=p.y + my) for p in s.probes))
     return ref, (mx, my)
+
+
+def _extend(lo: float, hi: float, grid_lo: float, grid_hi: float, shift: int):
+    """A block's extent along one axis in the reference: clipped to the test
+    grid, shifted by the margin, and open-ended where it met the outer wall."""
+    lo, hi = max(lo, grid_lo), min(hi, grid_hi)
+    if lo >= hi:
+        return None
+    return (-math.inf if lo <= grid_lo else lo + shift, math.inf if hi >= grid_hi else hi + shift)
 
 
 def compute_reference(s: Scenario) -> Reference:

@@ -18,7 +18,7 @@ def test_version_and_help():
 def test_demo_runs_and_prints_caution(capsys):
     assert main(["demo"]) == 0
     out = capsys.readouterr().out
-    assert "energy left in the grid" in out
+    assert "worst peak error" in out and "corner" in out and "late-time check" in out
     assert CAUTION in out
 
 
