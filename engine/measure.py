@@ -83,6 +83,8 @@ class Measurement:
     global_db: float = math.nan
     freqs: np.ndarray | None = None
     spectra: dict = field(default_factory=dict)
+    theory_spectra: dict = field(default_factory=dict)  # |R(theta_probe, f)| of the nearest face
+    probe_angles: dict = field(default_factory=dict)  # degrees, specular angle on the nearest face
     angles: AngleCurve | None = None
     plane_wave: dict | None = None  # {"freqs", "measured", "theory"} amplitude ratios
     frame_steps: np.ndarray | None = None
@@ -126,12 +128,14 @@ def _spectrum_axis(s: Scenario):
     return n, freqs, band
 
 
-def late_time_check(s: Scenario, steps: int = LATE_STEPS) -> LateTime:
-    """Run long after the pulse and report the energy trend."""
+def late_time_check(s: Scenario, steps: int = LATE_STEPS, progress=None) -> LateTime:
+    """Run long after the pulse and report the energy trend.
+
+    progress(step, total) may return False to cancel (raises RunCancelled)."""
     long = s.with_changes(steps=steps, probes=())
     check = max(100, steps // 200)
     try:
-        r = simulate(long, check_every=check)
+        r = simulate(long, check_every=check, progress=progress)
     except DivergenceError as exc:
         return LateTime(status="diverged", steps=steps, growth_db_per_1000=math.inf, final_db=math.inf,
                         energy_steps=np.zeros(0, int), interior_energy=np.zeros(0), layer_energy=np.zeros(0),
@@ -212,6 +216,11 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
                 ratio = np.abs(err_spectra[p.name][band]) / np.where(rs > 0, rs, np.inf)
                 masked = rs < np.abs(ref_spectra[p.name]).max() * 10 ** (SPECTRUM_MASK_DB / 20)
                 m.spectra[p.name] = np.where(masked, np.nan, ratio)
+                geometry = _specular(s, p)
+                if geometry is not None:
+                    side, angle = geometry[0], geometry[1]
+                    m.probe_angles[p.name] = math.degrees(angle)
+                    m.theory_spectra[p.name] = layer_reflection(s, side, m.freqs, angle)
             if s.source.line and s.probes:
                 m.plane_wave = _plane_wave(s, freqs[band], m.spectra)
         if "angles" in parts and not s.source.line:
@@ -238,20 +247,13 @@ def _plane_wave(s: Scenario, freqs, spectra) -> dict:
 
 
 def _angle_curve(s: Scenario, freqs, band, ref_spectra, err_spectra) -> AngleCurve:
-    src = s.source
     k = 2 * math.pi * freqs[band] * math.sqrt(s.eps_r) / C0
     names, sides, angles, measured, theory = [], [], [], [], []
     for p in s.probes:
-        face = _nearest_face(s, p.x, p.y)
-        if face is None:
+        geometry = _specular(s, p)
+        if geometry is None:
             continue
-        side, d_probe, along_probe = face
-        d_src, along_src = _nearest_face_distance(s, side, src.x, src.y)
-        normal = d_probe + d_src
-        tangential = abs(along_probe - along_src)
-        r_img = math.hypot(normal, tangential) * _cell(s, side)
-        r_dir = math.hypot(p.x - src.x, p.y - src.y) * math.hypot(s.dx, s.dy) / math.sqrt(2) \
-            if s.dx == s.dy else math.hypot((p.x - src.x) * s.dx, (p.y - src.y) * s.dy)
+        side, angle, r_img, r_dir = geometry
         if r_dir == 0 or r_img == 0:
             continue
         carry = np.abs(hankel2(0, k * r_img) / hankel2(0, k * r_dir))
@@ -260,7 +262,6 @@ def _angle_curve(s: Scenario, freqs, band, ref_spectra, err_spectra) -> AngleCur
         if weight.sum() == 0:
             continue
         reflected = np.abs(err_spectra[p.name][band])
-        angle = math.atan2(tangential, normal)
         r_theory = layer_reflection(s, side, freqs[band], angle)
         names.append(p.name)
         sides.append(side)
@@ -273,9 +274,22 @@ def _angle_curve(s: Scenario, freqs, band, ref_spectra, err_spectra) -> AngleCur
                       measured_db=np.asarray(measured)[order], theory_db=np.asarray(theory)[order])
 
 
+def _specular(s: Scenario, p):
+    """(side, angle, image distance, direct distance) of the echo reaching probe
+    p from its nearest CPML face, by the image-source construction."""
+    face = _nearest_face(s, p.x, p.y)
+    if face is None:
+        return None
+    side, d_probe, along_probe = face
+    src = s.source
+    d_src, along_src = _nearest_face_distance(s, side, src.x, src.y)
+    normal = d_probe + d_src
+    tangential = abs(along_probe - along_src)
+    d_normal, d_along = (s.dx, s.dy) if side in ("left", "right") else (s.dy, s.dx)
+    r_img = math.hypot(normal * d_normal, tangential * d_along)
+    r_dir = math.hypot((p.x - src.x) * s.dx, (p.y - src.y) * s.dy)
+    return side, math.atan2(tangential * d_along, normal * d_normal), r_img, r_dir
+
+
 def _nearest_face_distance(s: Scenario, side: str, x: int, y: int):
     return {"left": (x, y), "right": (s.nx - x, y), "bottom": (y, x), "top": (s.ny - y, x)}[side]
-
-
-def _cell(s: Scenario, side: str) -> float:
-    return s.dx if side in ("left", "right") else s.dy
