@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, replace
@@ -21,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .export import savez_atomic
 from .scenario import Block, Boundary, Scenario, Side
 from .simulate import simulate
 
@@ -118,24 +118,13 @@ def cache_dir() -> Path:
 
 
 def _save(path: Path, ref: Reference) -> None:
-    """Write to a temporary name in the same folder, then rename: a crash
-    leaves either the old file or the new one, never half of one."""
+    """Atomic write (temporary name, then rename): a crash never leaves half a file."""
     path.parent.mkdir(parents=True, exist_ok=True)
     names = list(ref.probes)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".npz")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez(fh, key=np.array(ref.key), names=np.array(names, dtype=object).astype(str),
-                     probes=np.stack([ref.probes[n] for n in names]) if names else np.zeros((0, 0)),
-                     frame_steps=ref.frame_steps, frames=ref.frames,
-                     elapsed_s=np.array(ref.elapsed_s), margin=np.array(ref.margin))
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    savez_atomic(path, dict(key=np.array(ref.key), names=np.array(names, dtype=str),
+                            probes=np.stack([ref.probes[n] for n in names]) if names else np.zeros((0, 0)),
+                            frame_steps=ref.frame_steps, frames=ref.frames,
+                            elapsed_s=np.array(ref.elapsed_s), margin=np.array(ref.margin)))
 
 
 def _load(path: Path, key: str) -> Reference | None:
