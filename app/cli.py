@@ -25,11 +25,20 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quietlayer",
         description="Choose and check the absorbing layer (CPML) at the edge of an FDTD grid.",
-        epilog="examples:\n  quietlayer demo\n  quietlayer demo --scenario my_cell.toml\n\n" + CAUTION,
+        epilog="examples:\n  quietlayer serve\n  quietlayer serve --port 8080 --no-show\n  quietlayer demo\n"
+               "  quietlayer demo --scenario my_cell.toml\n\nexit codes: 0 done, 2 a bad scenario file or option\n\n"
+               + CAUTION,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--version", action="version", version=f"quietlayer {_version()}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    serve = commands.add_parser("serve", help="start the dashboard on the built-in demo scenario")
+    serve.add_argument("--port", type=int, default=5006, help="port to listen on (default 5006; 0 picks a free one)")
+    serve.add_argument("--address", default="127.0.0.1",
+                       help="address to listen on (default 127.0.0.1: this machine only); give another on purpose "
+                            "to let other machines in")
+    serve.add_argument("--no-show", action="store_true", help="do not open a browser")
+    serve.add_argument("--preset", default="demo", help="preset scenario to open (default demo)")
     demo = commands.add_parser("demo", help="measure the layer of the built-in demo scenario (or a file)")
     demo.add_argument("--scenario", metavar="FILE.toml", help="a scenario file instead of the demo")
     return parser
@@ -72,6 +81,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command == "demo":
         return _run_demo(args.scenario)
+    if args.command == "serve":
+        from .serve import serve
+        return serve(port=args.port, address=args.address, show=not args.no_show, preset=args.preset)
     parser.print_help()
     return 0
 

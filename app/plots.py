@@ -1,0 +1,179 @@
+"""HoloViews figures of a Measurement (presentation only: the numbers come
+from the engine)."""
+
+from __future__ import annotations
+
+import math
+
+import holoviews as hv
+import numpy as np
+
+from quietlayer.engine.layer import layer_tables
+from quietlayer.engine.measure import FLOOR_DB, Measurement, to_db
+
+from .units import frequency_unit, length_unit, time_unit
+
+# Okabe & Ito's colour-blind-safe palette
+PALETTE = ["#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9", "#000000"]
+PINNED = "#888888"
+FIELD_FLOOR_DB = -80.0
+REFLECTED_FLOOR_DB = -140.0
+GROUPS = (("normal", 0.0), ("oblique", 45.0), ("grazing", 80.0))
+
+
+def probe_groups(m: Measurement) -> list[tuple[str, str]]:
+    """(label, probe name) for the probes nearest 0, 45 and 80 degrees, and the corner."""
+    picks, used = [], set()
+    angles = {k: v for k, v in m.probe_angles.items() if k != "corner"}
+    for label, target in GROUPS:
+        if not angles:
+            break
+        name = min(angles, key=lambda k: abs(angles[k] - target))
+        if name not in used:
+            used.add(name)
+            picks.append((f"{label} ({angles[name]:.0f}°)", name))
+    if "corner" in m.peak_db:
+        picks.append(("corner", "corner"))
+    return picks
+
+
+def _opts(element, **kw):
+    base = dict(responsive=True, height=270, show_grid=True, tools=["hover"], toolbar="above")
+    base.update(kw)
+    return element.opts(**base)
+
+
+def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: float = 1.0):
+    """Total field over the whole grid, or the reflected field over the interior,
+    as dB of |field| relative to the largest reference field of the run."""
+    if m is None or m.total_frames is None or m.frame_steps.size == 0:
+        return _image_opts(hv.Image(np.full((2, 2), np.nan), bounds=(0, 0, 1, 1)), reflected, fontscale, "mm")
+    s = m.scenario
+    k = int(np.clip(frame, 0, m.frame_steps.size - 1))
+    ox, oy = s.offset
+    grid_x = m.total_frames.shape[1] - 1
+    grid_y = m.total_frames.shape[2] - 1
+    scale, unit = length_unit(max(grid_x * s.dx, grid_y * s.dy))
+    peak = float(np.abs(m.total_frames[:, ox:ox + s.nx + 1, oy:oy + s.ny + 1]).max()) or 1.0
+    if reflected:
+        data = to_db(m.reflected_frames[k] / peak, REFLECTED_FLOOR_DB)
+        x0, y0 = 0.0, 0.0
+    else:
+        data = to_db(m.total_frames[k] / peak, FIELD_FLOOR_DB)
+        x0, y0 = -ox * s.dx, -oy * s.dy
+    nx, ny = data.shape
+    # nodes are cell-centred pixels: half a cell of margin on each side
+    bounds = ((x0 - 0.5 * s.dx) / scale, (y0 - 0.5 * s.dy) / scale,
+              (x0 + (nx - 0.5) * s.dx) / scale, (y0 + (ny - 0.5) * s.dy) / scale)
+    image = hv.Image(np.flipud(data.T), bounds=bounds, kdims=[f"x ({unit})", f"y ({unit})"],
+                     vdims=["dB"])
+    interior = hv.Bounds((-0.5 * s.dx / scale, -0.5 * s.dy / scale,
+                          (s.nx + 0.5) * s.dx / scale, (s.ny + 0.5) * s.dy / scale)).opts(
+        color="white" if not reflected else "#cccccc", line_width=1.5, line_dash="dashed")
+    probes = hv.Points([(p.x * s.dx / scale, p.y * s.dy / scale, p.name) for p in s.probes],
+                       kdims=[f"x ({unit})", f"y ({unit})"], vdims=["probe"]).opts(
+        color="#E69F00", size=6, marker="circle", line_color="black", tools=["hover"])
+    src = hv.Points([(s.source.x * s.dx / scale, s.source.y * s.dy / scale)],
+                    kdims=[f"x ({unit})", f"y ({unit})"]).opts(color="#D55E00", size=9, marker="star")
+    title = (f"reflected field only, step {m.frame_steps[k]}" if reflected
+             else f"total field, step {m.frame_steps[k]}")
+    return (_image_opts(image, reflected, fontscale, unit) * interior * probes * src).opts(title=title)
+
+
+def _image_opts(image, reflected: bool, fontscale: float, unit: str):
+    floor = REFLECTED_FLOOR_DB if reflected else FIELD_FLOOR_DB
+    return image.opts(cmap="viridis" if reflected else "cividis", clim=(floor, 0), colorbar=True,
+                      responsive=True, height=330, data_aspect=1, framewise=True, fontscale=fontscale,
+                      clabel="dB re. peak incident", tools=["hover"], toolbar="above")
+
+
+def _curve(x, y, kdim, vdim, label, color, dash="solid", width=2.0):
+    return hv.Curve((x, y), kdims=[kdim], vdims=[vdim], label=label).opts(
+        color=color, line_dash=dash, line_width=width)
+
+
+def spectrum_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
+    """Reflection spectra of the probe groups (solid) with theory (dashed); A dotted."""
+    scale, unit = frequency_unit(m.scenario.source.f_max)
+    kdim, vdim = f"frequency ({unit})", "reflection (dB)"
+    layers = []
+    for k, (label, name) in enumerate(probe_groups(m)):
+        f = m.freqs / scale
+        layers.append(_curve(f, to_db(m.spectra[name]), kdim, vdim, label, PALETTE[k]))
+        if name in m.theory_spectra:
+            layers.append(_curve(f, to_db(m.theory_spectra[name]), kdim, vdim, f"theory, {label}",
+                                 PALETTE[k], "dashed", 1.2))
+        if pinned is not None and pinned.freqs is not None and name in pinned.spectra:
+            layers.append(_curve(pinned.freqs / scale, to_db(pinned.spectra[name]), kdim, vdim, f"A, {label}",
+                                 PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
+    return _opts(hv.Overlay(layers), title="reflection spectrum |FFT(test − ref)| / |FFT(ref)|",
+                 legend_position="right", fontscale=fontscale)
+
+
+def error_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
+    """Error versus time at the probe groups, dB of the probe's reference peak; A dotted."""
+    scale, unit = time_unit(m.times[-1])
+    kdim, vdim = f"time ({unit})", "error (dB)"
+    layers = []
+    for k, (label, name) in enumerate(probe_groups(m)):
+        layers.append(_curve(m.times / scale, m.error_db[name], kdim, vdim, label, PALETTE[k]))
+        if pinned is not None and name in pinned.error_db:
+            layers.append(_curve(pinned.times / scale, pinned.error_db[name], kdim, vdim, f"A, {label}",
+                                 PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
+    return _opts(hv.Overlay(layers), title="error versus time |test − ref| / max|ref|",
+                 legend_position="right", fontscale=fontscale, ylim=(-160, 5))
+
+
+def angle_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
+    """Band-averaged reflection versus incidence angle: measured, plane-wave theory, A."""
+    kdim, vdim = "incidence angle (deg)", "reflection (dB)"
+    a = m.angles
+    layers = [_curve(a.angles_deg, a.measured_db, kdim, vdim, "measured", PALETTE[0]),
+              hv.Scatter((a.angles_deg, a.measured_db), kdims=[kdim], vdims=[vdim]).opts(color=PALETTE[0], size=6),
+              _curve(a.angles_deg, a.theory_db, kdim, vdim, "theory (plane wave)", PALETTE[1], "dashed")]
+    if pinned is not None and pinned.angles is not None:
+        b = pinned.angles
+        layers.append(_curve(b.angles_deg, b.measured_db, kdim, vdim, "A, measured", PINNED, "dotted"))
+    return _opts(hv.Overlay(layers), title="reflection versus incidence angle", xlim=(0, 90),
+                 legend_position="top_left", fontscale=fontscale)
+
+
+def profile_plots(m: Measurement | None, fontscale: float = 1.0):
+    """sigma and alpha, kappa, b and c against depth for the first CPML side."""
+    tables = layer_tables(m.scenario) if m is not None else {}
+    side = next(iter(tables), None)
+    t = tables.get(side)
+    unit_scale, unit = length_unit(t.node_depth[-1]) if t is not None else (1e-3, "mm")
+    kd = f"depth into the {side or ''} layer ({unit})"
+
+    def xs(kind):
+        return getattr(t, f"{kind}_depth") / unit_scale if t is not None else []
+
+    def ys(kind, name):
+        return getattr(t, f"{kind}_{name}") if t is not None else []
+
+    loss = hv.Overlay([
+        _curve(xs("node"), ys("node", "sigma"), kd, "S/m", "sigma", PALETTE[0]),
+        _curve(xs("node"), ys("node", "alpha"), kd, "S/m", "alpha", PALETTE[1], "dashed"),
+    ])
+    kappa = hv.Overlay([_curve(xs("node"), ys("node", "kappa"), kd, "kappa", "kappa", PALETTE[2])])
+    conv = hv.Overlay([
+        _curve(xs("node"), ys("node", "b"), kd, "b, c", "b (nodes)", PALETTE[3]),
+        _curve(xs("node"), ys("node", "c"), kd, "b, c", "c (nodes)", PALETTE[4], "dashed"),
+    ])
+    style = dict(responsive=True, height=230, show_grid=True, tools=["hover"], fontscale=fontscale,
+                 legend_position="top_left", toolbar=None)
+    return (loss.opts(title="sigma, alpha (S/m)", **style), kappa.opts(title="kappa", **style),
+            conv.opts(title="psi coefficients b, c", **style))
+
+
+def report_figures(m: Measurement) -> list:
+    """Static figures for the standalone report."""
+    frame = int(np.argmax([np.abs(f).max() for f in m.reflected_frames])) if m.reflected_frames is not None else 0
+    figures = [field_image(m, frame, False), field_image(m, frame, True), spectrum_plot(m, None),
+               error_plot(m, None), angle_plot(m, None)]
+    return figures + list(profile_plots(m))
+
+
+def finite_or_dash(value: float, fmt: str = "{:.1f}") -> str:
+    return fmt.format(value) if value is not None and math.isfinite(value) else "–"

@@ -1,0 +1,54 @@
+"""`quietlayer serve`: the dashboard on a local Bokeh server."""
+
+from __future__ import annotations
+
+import socket
+import sys
+import time
+
+
+def websocket_origins(address: str, port: int) -> list[str]:
+    """Origins allowed to open the page's websocket: the address it listens on,
+    and for an all-interfaces address this machine's names and addresses."""
+    hosts = {address, "localhost", "127.0.0.1"} if address in ("127.0.0.1", "localhost") else {address}
+    if address in ("0.0.0.0", "::", ""):
+        name = socket.gethostname()
+        hosts = {name, socket.getfqdn(), "localhost", "127.0.0.1"}
+        try:
+            hosts |= set(socket.gethostbyname_ex(name)[2])
+        except OSError:
+            pass
+    return sorted(f"{h}:{port}" for h in hosts if h)
+
+
+def warm_up(preset: str) -> float:
+    """Load the compiled kernels and the demo's reference before the first visitor."""
+    from quietlayer.engine.measure import measure
+    from .page import PAGE_PARTS, load_preset
+    t = time.perf_counter()
+    measure(load_preset(preset), parts=PAGE_PARTS)
+    return time.perf_counter() - t
+
+
+def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, preset: str = "demo") -> int:
+    import panel as pn
+    from quietlayer.assets import preset_names
+
+    from .page import create_page
+
+    if preset not in preset_names():
+        print(f"quietlayer: --preset {preset!r} is not allowed: one of {', '.join(preset_names())}", file=sys.stderr)
+        return 2
+    print("quietlayer: preparing the engine (the first start compiles it; later starts load it)...", flush=True)
+    seconds = warm_up(preset)
+    print(f"quietlayer: engine ready in {seconds:.1f} s", flush=True)
+    if port == 0:
+        with socket.socket() as probe:
+            probe.bind((address, 0))
+            port = probe.getsockname()[1]
+    origins = websocket_origins(address, port)
+    print(f"quietlayer: open http://{'localhost' if address in ('127.0.0.1', 'localhost') else address}:{port}/ "
+          "(Ctrl-C stops)", flush=True)
+    pn.serve({"/": lambda: create_page(preset)}, port=port, address=address, websocket_origin=origins,
+             show=show, title="Quietlayer", threaded=False, verbose=False)
+    return 0
