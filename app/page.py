@@ -216,24 +216,46 @@ class QuietlayerPage:
     # --- plots ---------------------------------------------------------------
     def _make_plots(self):
         self.frame_stream = hv.streams.Stream.define("Frame", frame=0)()
+        self.result_pipe = hv.streams.Pipe(data=None)
+        self.figure_units = None
         keys = ("total", "reflected", "spectrum", "error", "angle", "profile0", "profile1", "profile2")
         self.panes = {k: pn.pane.HoloViews(None, sizing_mode="stretch_width", linked_axes=False) for k in keys}
 
     def _rebuild_plots(self):
-        """New figures for the current result (and pinned A).  Only the two field
-        images stay live between results: the time scrubber updates them in place."""
-        m, a, fs = self.result, self.pinned, self.fontscale
+        """Show the current result.  Figures keep one layer structure, so a new
+        result streams into the existing plots; they are built anew only when
+        the display units (or the font scale) change."""
+        m = self.result
         if m is None:
             return
-        for key, reflected in (("total", False), ("reflected", True)):
-            self.panes[key].object = hv.DynamicMap(
-                lambda frame, reflected=reflected: plots.field_image(m, frame, reflected, fs),
-                streams=[self.frame_stream])
-        self.panes["spectrum"].object = plots.spectrum_plot(m, a, fs)
-        self.panes["error"].object = plots.error_plot(m, a, fs)
-        self.panes["angle"].object = plots.angle_plot(m, a, fs)
-        for k, figure in enumerate(plots.profile_plots(m, fs)):
-            self.panes[f"profile{k}"].object = figure
+        units = plots.units_of(m) + (self.fontscale,)
+        if units == self.figure_units:
+            self.result_pipe.event(data=m)
+            return
+        self.figure_units = units
+        self.result_pipe.update(data=m)
+        fs = self.fontscale
+        page = self
+
+        def total(data, frame):
+            return plots.field_image(data, frame, False, fs)
+
+        def reflected(data, frame):
+            return plots.field_image(data, frame, True, fs)
+
+        maps = {"total": hv.DynamicMap(total, streams=[self.result_pipe, self.frame_stream]),
+                "reflected": hv.DynamicMap(reflected, streams=[self.result_pipe, self.frame_stream]),
+                "spectrum": hv.DynamicMap(lambda data: plots.spectrum_plot(data, page.pinned, fs),
+                                          streams=[self.result_pipe]),
+                "error": hv.DynamicMap(lambda data: plots.error_plot(data, page.pinned, fs),
+                                       streams=[self.result_pipe]),
+                "angle": hv.DynamicMap(lambda data: plots.angle_plot(data, page.pinned, fs),
+                                       streams=[self.result_pipe])}
+        for k in range(3):
+            maps[f"profile{k}"] = hv.DynamicMap(lambda data, k=k: plots.profile_plots(data, fs)[k],
+                                                streams=[self.result_pipe])
+        for key, dmap in maps.items():
+            self.panes[key].object = dmap
 
     # --- layout ---------------------------------------------------------------
     def _layout(self):
@@ -304,6 +326,7 @@ class QuietlayerPage:
         self.controls.visible = not event.new
         self.main.css_classes = ["ql-present"] if event.new else []
         self.fontscale = 1.6 if event.new else 1.0
+        self.figure_units = None
         self._rebuild_plots()
         self._show_headline()
 
@@ -368,6 +391,7 @@ class QuietlayerPage:
         self.message.visible = False
         self._show_sigma(s)
         if not self.running:
+            self.running = True  # before scheduling: a burst must not start a second loop
             pn.state.execute(self._run_loop) if pn.state.curdoc else asyncio.ensure_future(self._run_loop())
 
     def _show_sigma(self, s: Scenario):
@@ -382,7 +406,6 @@ class QuietlayerPage:
         self.w_sigma_abs.object = text
 
     async def _run_loop(self):
-        self.running = True
         self.spinner.value = True
         try:
             while True:
@@ -412,14 +435,16 @@ class QuietlayerPage:
 
     def _show_result(self):
         m = self.result
-        frames = m.frame_steps.size
-        self.w_player.end = max(1, frames - 1)
-        best = int(np.argmax([np.abs(f).max() for f in m.reflected_frames])) if frames else 0
-        self.w_player.value = min(best, self.w_player.end)
-        self.frame_stream.event(frame=self.w_player.value)
-        self._rebuild_plots()
         self.late = None
-        self._show_headline()
+        self._show_headline()  # the figures the user waits for first
+        frames = m.frame_steps.size
+        first = self.figure_units is None
+        if first:  # open on the frame where the echo is strongest; later keep the user's frame
+            frame = int(np.argmax([np.abs(f).max() for f in m.reflected_frames])) if frames else 0
+        else:
+            frame = min(self.w_player.value, max(0, frames - 1))
+        self.w_player.param.update(end=max(1, frames - 1), value=frame)
+        self._rebuild_plots()
 
     def _start_late_check(self, s: Scenario, generation: int):
         def still_wanted(step, total):

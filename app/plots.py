@@ -21,20 +21,31 @@ REFLECTED_FLOOR_DB = -140.0
 GROUPS = (("normal", 0.0), ("oblique", 45.0), ("grazing", 80.0))
 
 
-def probe_groups(m: Measurement) -> list[tuple[str, str]]:
-    """(label, probe name) for the probes nearest 0, 45 and 80 degrees, and the corner."""
+GROUP_LABELS = ("normal", "oblique", "grazing", "corner")
+
+
+def probe_groups(m: Measurement) -> list[tuple[str, str | None]]:
+    """(group, probe name or None) for the probes nearest 0, 45 and 80 degrees and the corner:
+    always four entries, so the figures keep one layer structure."""
     picks, used = [], set()
     angles = {k: v for k, v in m.probe_angles.items() if k != "corner"}
     for label, target in GROUPS:
-        if not angles:
-            break
-        name = min(angles, key=lambda k: abs(angles[k] - target))
-        if name not in used:
-            used.add(name)
-            picks.append((f"{label} ({angles[name]:.0f}°)", name))
-    if "corner" in m.peak_db:
-        picks.append(("corner", "corner"))
+        name = min(angles, key=lambda k: abs(angles[k] - target)) if angles else None
+        if name in used:
+            name = None
+        used.add(name)
+        picks.append((label, name))
+    picks.append(("corner", "corner" if "corner" in m.peak_db else None))
     return picks
+
+
+def units_of(m: Measurement) -> tuple:
+    """The display units a figure of `m` uses; a change forces a rebuild."""
+    s = m.scenario
+    ox, oy = s.offset
+    extent = max((s.total_cells_x) * s.dx, (s.total_cells_y) * s.dy)
+    angles = tuple(round(m.probe_angles.get(name, -1.0)) for _, name in probe_groups(m) if name)
+    return frequency_unit(s.source.f_max)[1], time_unit(m.times[-1])[1], length_unit(extent)[1], angles
 
 
 def _opts(element, **kw):
@@ -83,7 +94,7 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
 def _image_opts(image, reflected: bool, fontscale: float, unit: str):
     floor = REFLECTED_FLOOR_DB if reflected else FIELD_FLOOR_DB
     return image.opts(cmap="viridis" if reflected else "cividis", clim=(floor, 0), colorbar=True,
-                      responsive=True, height=330, data_aspect=1, framewise=True, fontscale=fontscale,
+                      responsive=True, height=380, data_aspect=1, framewise=True, fontscale=fontscale,
                       clabel="dB re. peak incident", tools=["hover"], toolbar="above")
 
 
@@ -92,22 +103,30 @@ def _curve(x, y, kdim, vdim, label, color, dash="solid", width=2.0):
         color=color, line_dash=dash, line_width=width)
 
 
+def _group_label(m: Measurement, label: str, name: str | None) -> str:
+    if name is not None and name in m.probe_angles and label != "corner":
+        return f"{label} ({m.probe_angles[name]:.0f}°)"
+    return label
+
+
 def spectrum_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
-    """Reflection spectra of the probe groups (solid) with theory (dashed); A dotted."""
+    """Reflection spectra of the probe groups (solid), theory (dashed), A (dotted)."""
     scale, unit = frequency_unit(m.scenario.source.f_max)
     kdim, vdim = f"frequency ({unit})", "reflection (dB)"
     layers = []
     for k, (label, name) in enumerate(probe_groups(m)):
-        f = m.freqs / scale
-        layers.append(_curve(f, to_db(m.spectra[name]), kdim, vdim, label, PALETTE[k]))
-        if name in m.theory_spectra:
-            layers.append(_curve(f, to_db(m.theory_spectra[name]), kdim, vdim, f"theory, {label}",
-                                 PALETTE[k], "dashed", 1.2))
-        if pinned is not None and pinned.freqs is not None and name in pinned.spectra:
-            layers.append(_curve(pinned.freqs / scale, to_db(pinned.spectra[name]), kdim, vdim, f"A, {label}",
-                                 PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
-    return _opts(hv.Overlay(layers), title="reflection spectrum |FFT(test − ref)| / |FFT(ref)|",
-                 legend_position="right", fontscale=fontscale)
+        have = name is not None and name in m.spectra
+        f = m.freqs / scale if have else []
+        layers.append(_curve(f, to_db(m.spectra[name]) if have else [], kdim, vdim,
+                             _group_label(m, label, name), PALETTE[k]))
+        theory = m.theory_spectra.get(name) if have else None
+        layers.append(_curve(f if theory is not None else [], to_db(theory) if theory is not None else [],
+                             kdim, vdim, "", PALETTE[k], "dashed", 1.2))
+        a_have = pinned is not None and pinned.freqs is not None and name in pinned.spectra
+        layers.append(_curve(pinned.freqs / scale if a_have else [], to_db(pinned.spectra[name]) if a_have else [],
+                             kdim, vdim, "", PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
+    return _opts(hv.Overlay(layers), title="reflection spectrum (dashed: theory, dotted: A)",
+                 legend_position="right", fontscale=fontscale, framewise=True)
 
 
 def error_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
@@ -116,26 +135,28 @@ def error_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.
     kdim, vdim = f"time ({unit})", "error (dB)"
     layers = []
     for k, (label, name) in enumerate(probe_groups(m)):
-        layers.append(_curve(m.times / scale, m.error_db[name], kdim, vdim, label, PALETTE[k]))
-        if pinned is not None and name in pinned.error_db:
-            layers.append(_curve(pinned.times / scale, pinned.error_db[name], kdim, vdim, f"A, {label}",
-                                 PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
-    return _opts(hv.Overlay(layers), title="error versus time |test − ref| / max|ref|",
-                 legend_position="right", fontscale=fontscale, ylim=(-160, 5))
+        have = name is not None and name in m.error_db
+        layers.append(_curve(m.times / scale if have else [], m.error_db[name] if have else [],
+                             kdim, vdim, _group_label(m, label, name), PALETTE[k]))
+        a_have = pinned is not None and name in pinned.error_db
+        layers.append(_curve(pinned.times / scale if a_have else [], pinned.error_db[name] if a_have else [],
+                             kdim, vdim, "", PALETTE[k], "dotted", 1.5).opts(alpha=0.6))
+    return _opts(hv.Overlay(layers), title="error versus time (dotted: A)",
+                 legend_position="right", fontscale=fontscale, ylim=(-160, 5), framewise=True)
 
 
 def angle_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.0):
     """Band-averaged reflection versus incidence angle: measured, plane-wave theory, A."""
     kdim, vdim = "incidence angle (deg)", "reflection (dB)"
     a = m.angles
+    b = pinned.angles if pinned is not None else None
     layers = [_curve(a.angles_deg, a.measured_db, kdim, vdim, "measured", PALETTE[0]),
               hv.Scatter((a.angles_deg, a.measured_db), kdims=[kdim], vdims=[vdim]).opts(color=PALETTE[0], size=6),
-              _curve(a.angles_deg, a.theory_db, kdim, vdim, "theory (plane wave)", PALETTE[1], "dashed")]
-    if pinned is not None and pinned.angles is not None:
-        b = pinned.angles
-        layers.append(_curve(b.angles_deg, b.measured_db, kdim, vdim, "A, measured", PINNED, "dotted"))
+              _curve(a.angles_deg, a.theory_db, kdim, vdim, "theory (plane wave)", PALETTE[1], "dashed"),
+              _curve(b.angles_deg if b is not None else [], b.measured_db if b is not None else [],
+                     kdim, vdim, "A measured", PINNED, "dotted")]
     return _opts(hv.Overlay(layers), title="reflection versus incidence angle", xlim=(0, 90),
-                 legend_position="top_left", fontscale=fontscale)
+                 legend_position="top_left", fontscale=fontscale, framewise=True)
 
 
 def profile_plots(m: Measurement | None, fontscale: float = 1.0):
@@ -144,7 +165,7 @@ def profile_plots(m: Measurement | None, fontscale: float = 1.0):
     side = next(iter(tables), None)
     t = tables.get(side)
     unit_scale, unit = length_unit(t.node_depth[-1]) if t is not None else (1e-3, "mm")
-    kd = f"depth into the {side or ''} layer ({unit})"
+    kd = f"depth ({unit})"
 
     def xs(kind):
         return getattr(t, f"{kind}_depth") / unit_scale if t is not None else []
@@ -162,9 +183,9 @@ def profile_plots(m: Measurement | None, fontscale: float = 1.0):
         _curve(xs("node"), ys("node", "c"), kd, "b, c", "c (nodes)", PALETTE[4], "dashed"),
     ])
     style = dict(responsive=True, height=230, show_grid=True, tools=["hover"], fontscale=fontscale,
-                 legend_position="top_left", toolbar=None)
-    return (loss.opts(title="sigma, alpha (S/m)", **style), kappa.opts(title="kappa", **style),
-            conv.opts(title="psi coefficients b, c", **style))
+                 legend_position="top_left", toolbar=None, framewise=True)
+    return (loss.opts(title=f"{side or ''} layer: sigma, alpha", **style), kappa.opts(title="kappa", **style),
+            conv.opts(title="b, c", **style))
 
 
 def report_figures(m: Measurement) -> list:
