@@ -93,6 +93,7 @@ class QuietlayerPage:
         self.measure_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-measure")
         self.late_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-late")
         self._suspend = False
+        self._placing_player = False
         self._make_widgets()
         self._set_widgets_from(self.base)
         self._make_plots()
@@ -117,11 +118,11 @@ class QuietlayerPage:
         self.w_eps = w.FloatInput(label="Host eps_r", value=1.0, start=1.0, end=100.0, step=0.1)
         self.w_sigma_host = w.FloatInput(label="Host conductivity (S/m)", value=0.0, start=0.0, end=100.0, step=0.001)
         self.w_pol = w.RadioButtonGroup(label="Polarization", options=["TMz", "TEz"], value="TMz")
-        self.w_fmin = w.TextInput(label="f_min", value="1 GHz")
-        self.w_fmax = w.TextInput(label="f_max", value="15 GHz")
+        self.w_fmin = w.TextInput(label="f_min", value="1 GHz", width=145)
+        self.w_fmax = w.TextInput(label="f_max", value="15 GHz", width=145)
         self.w_precision = w.RadioButtonGroup(label="Precision", options=["float32", "float64"], value="float32")
-        self.w_nx = w.IntInput(label="Interior nx (cells)", value=80, start=30, end=600)
-        self.w_ny = w.IntInput(label="Interior ny (cells)", value=200, start=30, end=600)
+        self.w_nx = w.IntInput(label="Interior nx (cells)", value=80, start=30, end=600, width=145)
+        self.w_ny = w.IntInput(label="Interior ny (cells)", value=200, start=30, end=600, width=145)
         self.w_steps = w.IntInput(label="Run length (steps)", value=600, start=50, end=6000, step=50)
         self.w_present = w.Toggle(label="Presentation mode", value=False, button_type="default")
         self.w_pin = w.Button(label="Pin as A", button_type="primary")
@@ -184,6 +185,8 @@ class QuietlayerPage:
         """The scenario the controls describe; ScenarioError names a bad field."""
         b = self.base
         d = parse_length("cell size", self.w_cell.value)
+        if not 1e-9 <= d <= 1.0:
+            raise ScenarioError("cell size", self.w_cell.value, "a length from 1 nm to 1 m, e.g. '1 mm' or '20 nm'")
         f_min = parse_frequency("f_min", self.w_fmin.value)
         f_max = parse_frequency("f_max", self.w_fmax.value)
         for name, widget in (("nx", self.w_nx), ("ny", self.w_ny), ("steps", self.w_steps),
@@ -285,10 +288,10 @@ class QuietlayerPage:
         curves = pn.GridBox(pn.Column(self.panes["spectrum"], note("spectrum")),
                             pn.Column(self.panes["angle"], note("angle")),
                             pn.Column(self.panes["error"], note("error")),
-                            pn.Column(pn.Row(self.panes["profile0"], self.panes["profile1"], self.panes["profile2"],
-                                             sizing_mode="stretch_width"), note("profile")),
+                            pn.Column(self.panes["profile0"], note("profile")),
                             ncols=2, sizing_mode="stretch_width")
-        self.main = pn.Column(top, self.message, self.headline, self.status, fields, curves, caution,
+        profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
+        self.main = pn.Column(top, self.message, self.headline, self.status, fields, curves, profile_row, caution,
                               sizing_mode="stretch_width", stylesheets=[STYLE])
         self.root = pn.Row(self.controls, self.main, sizing_mode="stretch_width")
 
@@ -308,7 +311,11 @@ class QuietlayerPage:
         self.w_profile.param.watch(self._profile_uploaded, "value")
         self.w_profile_clear.on_click(self._profile_cleared)
         self.w_scenario_file.param.watch(self._scenario_uploaded, "value")
-        self.w_player.param.watch(lambda e: self.frame_stream.event(frame=e.new), "value")
+        self.w_player.param.watch(self._frame_changed, "value")
+
+    def _frame_changed(self, event):
+        if not self._placing_player:
+            self.frame_stream.event(frame=event.new)
 
     def _changed(self, *_):
         if not self._suspend:
@@ -427,6 +434,9 @@ class QuietlayerPage:
                 self.last_good = s
                 self.round_trip_s = time.perf_counter() - started
                 self._show_result()
+                await asyncio.sleep(0.01)  # let the headline reach the browser before the figures render
+                if generation == self.generation:
+                    self._rebuild_plots()
                 self._start_late_check(s, generation)
                 return
         finally:
@@ -443,8 +453,13 @@ class QuietlayerPage:
             frame = int(np.argmax([np.abs(f).max() for f in m.reflected_frames])) if frames else 0
         else:
             frame = min(self.w_player.value, max(0, frames - 1))
-        self.w_player.param.update(end=max(1, frames - 1), value=frame)
-        self._rebuild_plots()
+        self._placing_player = True  # the figures follow with the new result, not before it
+        try:
+            self.w_player.end = max(1, frames - 1)  # the range first: the slider redraws on a value change
+            self.w_player.value = frame
+        finally:
+            self._placing_player = False
+        self.frame_stream.update(frame=frame)
 
     def _start_late_check(self, s: Scenario, generation: int):
         def still_wanted(step, total):

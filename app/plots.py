@@ -94,8 +94,8 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
 def _image_opts(image, reflected: bool, fontscale: float, unit: str):
     floor = REFLECTED_FLOOR_DB if reflected else FIELD_FLOOR_DB
     return image.opts(cmap="viridis" if reflected else "cividis", clim=(floor, 0), colorbar=True,
-                      responsive=True, height=380, data_aspect=1, framewise=True, fontscale=fontscale,
-                      clabel="dB re. peak incident", tools=["hover"], toolbar="above")
+                      frame_height=int(340 * min(fontscale, 1.3)), data_aspect=1, framewise=True,
+                      fontscale=fontscale, clabel="dB re. peak incident", tools=["hover"], toolbar="above")
 
 
 def _curve(x, y, kdim, vdim, label, color, dash="solid", width=2.0):
@@ -154,8 +154,8 @@ def angle_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.
               hv.Scatter((a.angles_deg, a.measured_db), kdims=[kdim], vdims=[vdim]).opts(color=PALETTE[0], size=6),
               _curve(a.angles_deg, a.theory_db, kdim, vdim, "theory (plane wave)", PALETTE[1], "dashed"),
               _curve(b.angles_deg if b is not None else [], b.measured_db if b is not None else [],
-                     kdim, vdim, "A measured", PINNED, "dotted")]
-    return _opts(hv.Overlay(layers), title="reflection versus incidence angle", xlim=(0, 90),
+                     kdim, vdim, "", PINNED, "dotted")]
+    return _opts(hv.Overlay(layers), title="reflection versus incidence angle (dotted: A)", xlim=(0, 90),
                  legend_position="top_left", fontscale=fontscale, framewise=True)
 
 
@@ -179,13 +179,14 @@ def profile_plots(m: Measurement | None, fontscale: float = 1.0):
     ])
     kappa = hv.Overlay([_curve(xs("node"), ys("node", "kappa"), kd, "kappa", "kappa", PALETTE[2])])
     conv = hv.Overlay([
-        _curve(xs("node"), ys("node", "b"), kd, "b, c", "b (nodes)", PALETTE[3]),
-        _curve(xs("node"), ys("node", "c"), kd, "b, c", "c (nodes)", PALETTE[4], "dashed"),
+        _curve(xs("node"), ys("node", "b"), kd, "b, c", "b", PALETTE[3]),
+        _curve(xs("node"), ys("node", "c"), kd, "b, c", "c", PALETTE[4], "dashed"),
     ])
     style = dict(responsive=True, height=230, show_grid=True, tools=["hover"], fontscale=fontscale,
                  legend_position="top_left", toolbar=None, framewise=True)
-    return (loss.opts(title=f"{side or ''} layer: sigma, alpha", **style), kappa.opts(title="kappa", **style),
-            conv.opts(title="b, c", **style))
+    return (loss.opts(title=f"{side or ''} layer: sigma and alpha (S/m)", **style),
+            kappa.opts(title=f"{side or ''} layer: kappa", **style),
+            conv.opts(title=f"{side or ''} layer: psi coefficients b and c", **style))
 
 
 def report_figures(m: Measurement) -> list:
