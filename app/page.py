@@ -11,13 +11,14 @@ when the parameters change again.
 
 from __future__ import annotations
 
-import asyncio
 import io
 import json
 import math
+import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
+from functools import partial
 
 import holoviews as hv
 import numpy as np
@@ -40,6 +41,7 @@ CAUTION = ("Quietlayer estimates the numerical reflection of a simulation bounda
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
 SIDE_NAMES = ["left", "right", "bottom", "top"]
 SOURCE_GAP = 12  # cells between the source and the right face in the bench layout
+FIGURE_GAP_MS = 15  # between figure updates: the previous changes reach the browser first
 
 NOTES = {
     "fields": "**What am I looking at.** Left: |field| over the whole grid in dB of the largest incident "
@@ -94,6 +96,8 @@ class QuietlayerPage:
         self.late_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-late")
         self._suspend = False
         self._placing_player = False
+        self._lock = threading.Lock()
+        self.doc = None  # the session's document, set by create_page
         self._make_widgets()
         self._set_widgets_from(self.base)
         self._make_plots()
@@ -217,46 +221,53 @@ class QuietlayerPage:
                               source=source, probes=probes, boundary=Boundary(**sides))
 
     # --- plots ---------------------------------------------------------------
+    FIGURES = ("spectrum", "angle", "total", "reflected", "error", "profile0", "profile1", "profile2")
+
     def _make_plots(self):
         self.frame_stream = hv.streams.Stream.define("Frame", frame=0)()
-        self.result_pipe = hv.streams.Pipe(data=None)
+        self.pipes = {k: hv.streams.Pipe(data=None) for k in self.FIGURES}
         self.figure_units = None
-        keys = ("total", "reflected", "spectrum", "error", "angle", "profile0", "profile1", "profile2")
-        self.panes = {k: pn.pane.HoloViews(None, sizing_mode="stretch_width", linked_axes=False) for k in keys}
+        self.panes = {k: pn.pane.HoloViews(None, sizing_mode="stretch_width", linked_axes=False) for k in self.FIGURES}
+        for k in ("total", "reflected"):  # fixed-size figures: the pane takes the figure's own size
+            self.panes[k] = pn.pane.HoloViews(None, sizing_mode="fixed", linked_axes=False)
+
+    def _figures_need_rebuild(self) -> bool:
+        return plots.units_of(self.result) + (self.fontscale,) != self.figure_units
 
     def _rebuild_plots(self):
-        """Show the current result.  Figures keep one layer structure, so a new
-        result streams into the existing plots; they are built anew only when
-        the display units (or the font scale) change."""
+        """Show the current result in every figure at once (pin, presentation)."""
+        if self.result is None:
+            return
+        if self._figures_need_rebuild():
+            self._build_figures()
+        for key in self.FIGURES:
+            self.pipes[key].event(data=self.result)
+
+    def _build_figures(self):
+        """Figures keep one layer structure, so a new result streams into the
+        existing Bokeh plots; they are built anew only when the display units,
+        the probe angles or the font scale change."""
         m = self.result
-        if m is None:
-            return
-        units = plots.units_of(m) + (self.fontscale,)
-        if units == self.figure_units:
-            self.result_pipe.event(data=m)
-            return
-        self.figure_units = units
-        self.result_pipe.update(data=m)
+        self.figure_units = plots.units_of(m) + (self.fontscale,)
         fs = self.fontscale
         page = self
-
-        def total(data, frame):
-            return plots.field_image(data, frame, False, fs)
-
-        def reflected(data, frame):
-            return plots.field_image(data, frame, True, fs)
-
-        maps = {"total": hv.DynamicMap(total, streams=[self.result_pipe, self.frame_stream]),
-                "reflected": hv.DynamicMap(reflected, streams=[self.result_pipe, self.frame_stream]),
-                "spectrum": hv.DynamicMap(lambda data: plots.spectrum_plot(data, page.pinned, fs),
-                                          streams=[self.result_pipe]),
-                "error": hv.DynamicMap(lambda data: plots.error_plot(data, page.pinned, fs),
-                                       streams=[self.result_pipe]),
-                "angle": hv.DynamicMap(lambda data: plots.angle_plot(data, page.pinned, fs),
-                                       streams=[self.result_pipe])}
+        for pipe in self.pipes.values():
+            pipe.update(data=m)
+        maps = {
+            "total": hv.DynamicMap(lambda data, frame: plots.field_image(data, frame, False, fs),
+                                   streams=[self.pipes["total"], self.frame_stream]),
+            "reflected": hv.DynamicMap(lambda data, frame: plots.field_image(data, frame, True, fs),
+                                       streams=[self.pipes["reflected"], self.frame_stream]),
+            "spectrum": hv.DynamicMap(lambda data: plots.spectrum_plot(data, page.pinned, fs),
+                                      streams=[self.pipes["spectrum"]]),
+            "error": hv.DynamicMap(lambda data: plots.error_plot(data, page.pinned, fs),
+                                   streams=[self.pipes["error"]]),
+            "angle": hv.DynamicMap(lambda data: plots.angle_plot(data, page.pinned, fs),
+                                   streams=[self.pipes["angle"]]),
+        }
         for k in range(3):
             maps[f"profile{k}"] = hv.DynamicMap(lambda data, k=k: plots.profile_plots(data, fs)[k],
-                                                streams=[self.result_pipe])
+                                                streams=[self.pipes[f"profile{k}"]])
         for key, dmap in maps.items():
             self.panes[key].object = dmap
 
@@ -281,7 +292,7 @@ class QuietlayerPage:
         caution = pn.pane.HTML(f'<div class="ql-caution">{CAUTION}</div>', stylesheets=[STYLE],
                                sizing_mode="stretch_width")
         note = lambda k: pn.pane.Markdown(NOTES[k], sizing_mode="stretch_width", styles={"font-size": "0.85em"})
-        fields = pn.Column(pn.Row(self.panes["total"], self.panes["reflected"], sizing_mode="stretch_width"),
+        fields = pn.Column(pn.Row(self.panes["total"], pn.Spacer(width=20), self.panes["reflected"]),
                            pn.Row(self.w_player, pn.pane.Markdown("Time scrubber: play, pause or drag through "
                                                                   "the run.")),
                            note("fields"), sizing_mode="stretch_width")
@@ -387,9 +398,24 @@ class QuietlayerPage:
         self.message.visible = True
 
     # --- the compute loop --------------------------------------------------------
+    def _call_soon(self, function, *args, delay_ms: int = 0):
+        """Run `function` on the page's event loop with the document locked.
+
+        The server sends a callback's changes from a later turn of the loop, so
+        work that should follow them on screen is given a delay."""
+        if self.doc is not None and self.doc.session_context is not None:
+            callback = partial(function, *args)
+            if delay_ms:
+                self.doc.add_timeout_callback(callback, delay_ms)
+            else:
+                self.doc.add_next_tick_callback(callback)
+        else:
+            function(*args)
+
     def request(self):
         """Ask for a run with the current controls; bursts are coalesced."""
-        self.generation += 1
+        with self._lock:
+            self.generation += 1
         try:
             s = self.scenario_from_controls()
         except ScenarioError as exc:
@@ -397,9 +423,12 @@ class QuietlayerPage:
             return
         self.message.visible = False
         self._show_sigma(s)
-        if not self.running:
-            self.running = True  # before scheduling: a burst must not start a second loop
-            pn.state.execute(self._run_loop) if pn.state.curdoc else asyncio.ensure_future(self._run_loop())
+        with self._lock:
+            start = not self.running
+            self.running = True
+        if start:
+            self.spinner.value = True
+            self.measure_pool.submit(self._work)
 
     def _show_sigma(self, s: Scenario):
         side = next((getattr(s.boundary, n) for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"), None)
@@ -412,36 +441,49 @@ class QuietlayerPage:
             text = f"profile from file, {len(side.profile.depth)} rows (sliders for grading are ignored)"
         self.w_sigma_abs.object = text
 
-    async def _run_loop(self):
-        self.spinner.value = True
-        try:
-            while True:
-                generation = self.generation
-                try:
-                    s = self.scenario_from_controls()
-                except ScenarioError as exc:
-                    self._show_error(str(exc))
-                    return
-                started = time.perf_counter()
-                try:
-                    result = await asyncio.wrap_future(self.measure_pool.submit(measure, s, parts=PAGE_PARTS))
-                except Exception as exc:  # a run that fails shows why and keeps the last figures
-                    self._show_error(f"The run failed: {exc}")
-                    return
-                if generation != self.generation:
-                    continue  # newer parameters arrived while this ran: run those instead
-                self.result = result
-                self.last_good = s
-                self.round_trip_s = time.perf_counter() - started
-                self._show_result()
-                await asyncio.sleep(0.01)  # let the headline reach the browser before the figures render
+    def _work(self):
+        """Worker thread: measure the newest setting until no newer one is waiting."""
+        while True:
+            generation = self.generation
+            try:
+                s = self.scenario_from_controls()
+                result = measure(s, parts=PAGE_PARTS)
+            except ScenarioError as exc:
+                self._call_soon(self._show_error, str(exc))
+                result = None
+            except Exception as exc:  # a run that fails says why and keeps the last figures
+                self._call_soon(self._show_error, f"The run failed: {exc}")
+                result = None
+            with self._lock:
                 if generation == self.generation:
-                    self._rebuild_plots()
-                self._start_late_check(s, generation)
-                return
-        finally:
-            self.running = False
-            self.spinner.value = False
+                    self.running = False
+                    if result is not None:
+                        self._call_soon(self._deliver, result, s, generation)
+                    else:
+                        self._call_soon(setattr, self.spinner, "value", False)
+                    return
+            # newer parameters arrived while this ran: run those instead
+
+    def _deliver(self, result, s: Scenario, generation: int):
+        """Event loop: show a fresh result, headline first, then one figure per tick."""
+        if generation != self.generation:
+            return
+        self.result = result
+        self.last_good = s
+        self.spinner.value = self.running
+        self._show_result()
+        self._start_late_check(s, generation)
+        if self._figures_need_rebuild():
+            self._build_figures()
+        self._call_soon(self._next_figure, generation, 0, delay_ms=FIGURE_GAP_MS)
+
+    def _next_figure(self, generation: int, index: int):
+        """One figure per event-loop turn: a slider moved meanwhile is handled at
+        once, and the figures of a stale result are skipped."""
+        if generation != self.generation or index >= len(self.FIGURES):
+            return
+        self.pipes[self.FIGURES[index]].event(data=self.result)
+        self._call_soon(self._next_figure, generation, index + 1, delay_ms=FIGURE_GAP_MS)
 
     def _show_result(self):
         m = self.result
@@ -462,22 +504,26 @@ class QuietlayerPage:
         self.frame_stream.update(frame=frame)
 
     def _start_late_check(self, s: Scenario, generation: int):
+        """The 20,000-step stability run, in its own worker; cancelled by the next change."""
         def still_wanted(step, total):
             return generation == self.generation
 
-        async def check():
+        def work():
             try:
-                late = await asyncio.wrap_future(self.late_pool.submit(late_time_check, s, progress=still_wanted))
+                late = late_time_check(s, progress=still_wanted)
             except RunCancelled:
                 return
             except Exception as exc:
-                self.status.object = f"late-time check failed: {exc}"
+                self._call_soon(setattr, self.status, "object", f"late-time check failed: {exc}")
                 return
-            if generation == self.generation:
-                self.late = late
-                self._show_headline()
+            self._call_soon(self._deliver_late, late, generation)
 
-        pn.state.execute(check) if pn.state.curdoc else asyncio.ensure_future(check())
+        self.late_pool.submit(work)
+
+    def _deliver_late(self, late, generation: int):
+        if generation == self.generation:
+            self.late = late
+            self._show_headline()
 
     def _show_headline(self):
         m = self.result
@@ -537,6 +583,7 @@ class QuietlayerPage:
 def create_page(preset: str = "demo"):
     """A fresh page for one browser session (never shared between sessions)."""
     page = QuietlayerPage(preset)
+    page.doc = pn.state.curdoc
     if pn.state.location is not None:
         page._suspend = True  # values restored from the link must not reset each other
         try:

@@ -58,7 +58,7 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
     """Total field over the whole grid, or the reflected field over the interior,
     as dB of |field| relative to the largest reference field of the run."""
     if m is None or m.total_frames is None or m.frame_steps.size == 0:
-        return _image_opts(hv.Image(np.full((2, 2), np.nan), bounds=(0, 0, 1, 1)), reflected, fontscale, "mm")
+        return _image_opts(hv.Image(np.full((2, 2), np.nan), bounds=(0, 0, 1, 1)), reflected, fontscale, "mm", 1.0)
     s = m.scenario
     k = int(np.clip(frame, 0, m.frame_steps.size - 1))
     ox, oy = s.offset
@@ -78,6 +78,7 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
               (x0 + (nx - 0.5) * s.dx) / scale, (y0 + (ny - 0.5) * s.dy) / scale)
     image = hv.Image(np.flipud(data.T), bounds=bounds, kdims=[f"x ({unit})", f"y ({unit})"],
                      vdims=["dB"])
+    aspect = (bounds[2] - bounds[0]) / (bounds[3] - bounds[1])
     interior = hv.Bounds((-0.5 * s.dx / scale, -0.5 * s.dy / scale,
                           (s.nx + 0.5) * s.dx / scale, (s.ny + 0.5) * s.dy / scale)).opts(
         color="white" if not reflected else "#cccccc", line_width=1.5, line_dash="dashed")
@@ -88,13 +89,18 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
                     kdims=[f"x ({unit})", f"y ({unit})"]).opts(color="#D55E00", size=9, marker="star")
     title = (f"reflected field only, step {m.frame_steps[k]}" if reflected
              else f"total field, step {m.frame_steps[k]}")
-    return (_image_opts(image, reflected, fontscale, unit) * interior * probes * src).opts(title=title)
+    return (_image_opts(image, reflected, fontscale, unit, aspect) * interior * probes * src).opts(title=title)
 
 
-def _image_opts(image, reflected: bool, fontscale: float, unit: str):
+def _image_opts(image, reflected: bool, fontscale: float, unit: str, aspect: float):
+    """Fixed frame sizes with the grid's true aspect: the plot then measures
+    exactly what it draws (no clipping of the colour bar or the layer)."""
     floor = REFLECTED_FLOOR_DB if reflected else FIELD_FLOOR_DB
+    height = int(340 * min(fontscale, 1.3))
+    width = int(np.clip(height * aspect, 120, 460))
+    height = int(np.clip(width / aspect, 120, 560)) if aspect > 0 else height
     return image.opts(cmap="viridis" if reflected else "cividis", clim=(floor, 0), colorbar=True,
-                      frame_height=int(340 * min(fontscale, 1.3)), data_aspect=1, framewise=True,
+                      frame_height=height, frame_width=width, framewise=True,
                       fontscale=fontscale, clabel="dB re. peak incident", tools=["hover"], toolbar="above")
 
 
