@@ -1,6 +1,11 @@
+import os
+import tempfile
 import warnings
 
 import pytest
+
+# The suite's references go to a folder of its own, not the user's cache.
+os.environ.setdefault("QUIETLAYER_CACHE_DIR", tempfile.mkdtemp(prefix="quietlayer-test-cache-"))
 
 from quietlayer.engine import ResolutionWarning
 
