@@ -281,8 +281,22 @@ class Dashboard:
         before = self.card("worst")
         self.press_slider(title, key, times)
         self.wait_card_change("worst", before)
-        self.wait_idle()
+        self.settle()
         return self.card("worst")
+
+    def settle(self, quiet_s: float = 0.8, timeout: float = RESULT_S) -> None:
+        """Wait until no run is going and the headline has not changed for quiet_s:
+        key presses that arrive one by one can start a second run after the first."""
+        deadline = time.monotonic() + timeout
+        last, since = None, time.monotonic()
+        while time.monotonic() < deadline:
+            now = (self.busy(), self.card("worst"), self.card("global"))
+            if now != last:
+                last, since = now, time.monotonic()
+            elif not now[0] and time.monotonic() - since >= quiet_s:
+                return
+            self.page.wait_for_timeout(50)
+        raise AssertionError(f"the page did not settle within {timeout:.0f} s; last seen {last!r}")
 
     def active_sides(self) -> list[str]:
         active = self.page.locator(".bk-btn-group .bk-btn.bk-active")
