@@ -103,6 +103,7 @@ class QuietlayerPage:
         self._make_plots()
         self._layout()
         self._watch()
+        self._show_headline()  # "computing" until the first result arrives
 
     # --- widgets ----------------------------------------------------------
     def _make_widgets(self):

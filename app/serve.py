@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import socket
 import sys
+import threading
 import time
 
 
@@ -39,9 +40,15 @@ def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, prese
     if preset not in preset_names():
         print(f"quietlayer: --preset {preset!r} is not allowed: one of {', '.join(preset_names())}", file=sys.stderr)
         return 2
-    print("quietlayer: preparing the engine (the first start compiles it; later starts load it)...", flush=True)
-    seconds = warm_up(preset)
-    print(f"quietlayer: engine ready in {seconds:.1f} s", flush=True)
+    print("quietlayer: preparing the engine in the background (the first start compiles it, about a "
+          "minute; later starts load it in about a second)...", flush=True)
+
+    def prepare():
+        seconds = warm_up(preset)
+        print(f"quietlayer: engine ready in {seconds:.1f} s", flush=True)
+
+    # the server listens meanwhile; a page that arrives early waits for the same compiled code
+    threading.Thread(target=prepare, name="ql-warm-up", daemon=True).start()
     if port == 0:
         with socket.socket() as probe:
             probe.bind((address, 0))
