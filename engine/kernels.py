@@ -247,7 +247,9 @@ def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
     P rows wait until every chunk's S2 is done."""
     nxp = P.shape[0]
     if chunk_starts.size <= 2:
-        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, 0, nxp, False)
+        # run-time values, not literals: a literal 0 or False would compile a second copy of the sweep
+        no_deferral = chunk_starts.size < 0
+        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts[0], nxp, no_deferral)
         return
     sweep_chunks(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts)
     for chunk in range(1, chunk_starts.size - 1):
