@@ -66,6 +66,7 @@ STYLE = """
 .ql-card .ql-value { font-size: 1.45em; font-weight: 600; color: #111; }
 .ql-card .ql-sub { font-size: 0.75em; color: #555; }
 .ql-present .ql-card .ql-value { font-size: 2.2em; }
+.ql-present .ql-card { min-width: 210px; }
 .ql-present .ql-card .ql-label, .ql-present .ql-card .ql-sub { font-size: 1.1em; }
 .ql-caution { font-size: 0.85em; color: #5a3b00; background: #fff6e0; border-left: 4px solid #E69F00; padding: 4px 8px; }
 """
@@ -554,7 +555,9 @@ class QuietlayerPage:
                   "cpw"),
             delta,
         ]
-        self.headline.object = '<div style="display:flex;gap:8px;flex-wrap:wrap">' + "".join(cards) + "</div>"
+        present = " ql-present" if self.w_present.value else ""  # the cards live in their own shadow root
+        self.headline.object = (f'<div class="ql-cards{present}" style="display:flex;gap:8px;flex-wrap:wrap">'
+                                + "".join(cards) + "</div>")
         self.status.object = (f"{s.title or 'custom scenario'} · {s.nx} × {s.ny} interior cells · {s.steps} steps · "
                               f"{s.polarization} · {s.precision}")
 

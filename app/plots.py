@@ -87,7 +87,7 @@ def field_image(m: Measurement | None, frame: int, reflected: bool, fontscale: f
         color="#E69F00", size=6, marker="circle", line_color="black", tools=["hover"])
     src = hv.Points([(s.source.x * s.dx / scale, s.source.y * s.dy / scale)],
                     kdims=[f"x ({unit})", f"y ({unit})"]).opts(color="#D55E00", size=9, marker="star")
-    title = (f"reflected field only, step {m.frame_steps[k]}" if reflected
+    title = (f"reflected only, step {m.frame_steps[k]}" if reflected
              else f"total field, step {m.frame_steps[k]}")
     return (_image_opts(image, reflected, fontscale, unit, aspect) * interior * probes * src).opts(title=title)
 

@@ -193,8 +193,8 @@ def test_two_sessions_do_not_share_changes(open_dashboard):
 
 def field_steps(dashboard) -> list[int]:
     """The time step in the titles of the two field images."""
-    found = (re.search(r"field.*, step (\d+)$", t) for t in dashboard.figure_titles())
-    return [int(m.group(1)) for m in found if m]
+    found = (re.search(r"^(total field|reflected only), step (\d+)$", t) for t in dashboard.figure_titles())
+    return [int(m.group(2)) for m in found if m]
 
 
 def test_time_scrubber_moves_both_field_images(dashboard):
