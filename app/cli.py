@@ -10,8 +10,8 @@ import argparse
 import sys
 from importlib.metadata import PackageNotFoundError, version
 
-CAUTION = ("Quietlayer estimates the numerical reflection of a simulation boundary. It certifies "
-           "no RF-exposure, EMC or safety compliance; defer to local codes and licensed practice.")
+from quietlayer.app import CAUTION
+
 
 
 def _version() -> str:

@@ -12,10 +12,8 @@ when the parameters change again.
 from __future__ import annotations
 
 import io
-import json
 import math
 import threading
-import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
 from functools import partial
@@ -33,11 +31,9 @@ from quietlayer.engine import (Boundary, Profile, RunCancelled, Scenario, Scenar
 from quietlayer.engine.defaults import angle_probes
 from quietlayer.engine.measure import measure, late_time_check
 
-from . import plots
+from . import CAUTION, plots
 from .units import format_frequency, format_length
 
-CAUTION = ("Quietlayer estimates the numerical reflection of a simulation boundary. It certifies no "
-           "RF-exposure, EMC or safety compliance; defer to local codes and licensed practice.")
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
 SIDE_NAMES = ["left", "right", "bottom", "top"]
 SOURCE_GAP = 12  # cells between the source and the right face in the bench layout

@@ -9,7 +9,7 @@ import holoviews as hv
 import numpy as np
 
 from quietlayer.engine.layer import layer_tables
-from quietlayer.engine.measure import FLOOR_DB, Measurement, to_db
+from quietlayer.engine.measure import Measurement, to_db
 
 from .units import frequency_unit, length_unit, time_unit
 
@@ -42,8 +42,7 @@ def probe_groups(m: Measurement) -> list[tuple[str, str | None]]:
 def units_of(m: Measurement) -> tuple:
     """The display units a figure of `m` uses; a change forces a rebuild."""
     s = m.scenario
-    ox, oy = s.offset
-    extent = max((s.total_cells_x) * s.dx, (s.total_cells_y) * s.dy)
+    extent = max(s.total_cells_x * s.dx, s.total_cells_y * s.dy)
     angles = tuple(round(m.probe_angles.get(name, -1.0)) for _, name in probe_groups(m) if name)
     return frequency_unit(s.source.f_max)[1], time_unit(m.times[-1])[1], length_unit(extent)[1], angles
 

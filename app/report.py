@@ -9,13 +9,11 @@ import io
 import panel as pn
 from bokeh.resources import INLINE
 
-from quietlayer.engine.layer import layer_tables, resolved_sigma_max, side_cell
+from quietlayer.engine.layer import resolved_sigma_max, side_cell
 
-from . import plots
+from . import CAUTION, plots
 from .units import format_frequency, format_length
 
-CAUTION = ("Quietlayer estimates the numerical reflection of a simulation boundary. It certifies no "
-           "RF-exposure, EMC or safety compliance; defer to local codes and licensed practice.")
 
 
 def _parameters(m) -> str:

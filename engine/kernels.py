@@ -72,24 +72,30 @@ def secondary_row(P, S1, S2, i, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
 
 
 @njit(**_ROW)
-def secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, k_lo, k_hi):
+def psi_y_columns(source, target, i, start, b, c, psi, coef, k_lo, k_hi, shift):
+    """Columns k_lo..k_hi-1 of row i of a y-slab: psi <- b psi + c d(source)/dy with
+    the difference source[j + shift] - source[j + shift - 1];  target -= coef psi."""
     for k in range(k_lo, k_hi):
         j = start + k
-        psi[i, k] = b[k] * psi[i, k] + c[k] * (P[i, j + 1] - P[i, j])
-        S1[i, j] -= coef[i, k] * psi[i, k]
+        psi[i, k] = b[k] * psi[i, k] + c[k] * (source[i, j + shift] - source[i, j + shift - 1])
+        target[i, j] -= coef[i, k] * psi[i, k]
+
+
+@njit(**_ROW)
+def psi_y_row(source, target, i, start, b, c, psi, coef, shift):
+    """Row i of a y-slab in blocks of LANES columns with a constant trip count,
+    which the compiler turns into whole vector operations (grid.py pads the slabs)."""
+    n = b.size
+    whole = n - n % LANES
+    for k0 in range(0, whole, LANES):
+        psi_y_columns(source, target, i, start, b, c, psi, coef, k0, k0 + LANES, shift)
+    psi_y_columns(source, target, i, start, b, c, psi, coef, whole, n, shift)
 
 
 @njit(**_ROW)
 def secondary_psi_y(P, S1, i, start, b, c, psi, coef):
-    """Row i of a y-slab of S1: psi <- b psi + c dP/dy;  S1 -= coef psi.
-
-    Runs in blocks of LANES columns with a constant trip count, which the
-    compiler turns into whole vector operations (grid.py pads the slabs)."""
-    n = b.size
-    whole = n - n % LANES
-    for k0 in range(0, whole, LANES):
-        secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, k0, k0 + LANES)
-    secondary_psi_y_columns(P, S1, i, start, b, c, psi, coef, whole, n)
+    """Row i of a y-slab of S1 (half nodes): psi <- b psi + c dP/dy;  S1 -= coef psi."""
+    psi_y_row(P, S1, i, start, b, c, psi, coef, 1)
 
 
 @njit(**_ROW)
@@ -148,21 +154,9 @@ def primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi):
 
 
 @njit(**_ROW)
-def primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, k_lo, k_hi):
-    for k in range(k_lo, k_hi):
-        j = start + k
-        psi[i, k] = b[k] * psi[i, k] + c[k] * (S1[i, j] - S1[i, j - 1])
-        P[i, j] -= coef[i, k] * psi[i, k]
-
-
-@njit(**_ROW)
 def primary_psi_y(S1, P, i, start, b, c, psi, coef):
     """Row i of a y-slab of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
-    n = b.size
-    whole = n - n % LANES
-    for k0 in range(0, whole, LANES):
-        primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, k0, k0 + LANES)
-    primary_psi_y_columns(S1, P, i, start, b, c, psi, coef, whole, n)
+    psi_y_row(S1, P, i, start, b, c, psi, coef, 0)
 
 
 @njit(**_SERIAL)

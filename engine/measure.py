@@ -30,7 +30,7 @@ import numpy as np
 from scipy.special import hankel2
 
 from .errors import DivergenceError
-from .reference import Reference, ReferenceCache, frame_every, reference
+from .reference import DEFAULT_CACHE, ReferenceCache, frame_every
 from .scenario import SIDES, Boundary, Scenario, Side
 from .simulate import simulate
 from .theory import layer_reflection
@@ -111,11 +111,11 @@ def _with_layer(s: Scenario, layer) -> Scenario:
 
 def _nearest_face(s: Scenario, x: int, y: int):
     """(side, distance to the face, offset along it) of the nearest CPML face."""
-    faces = {"left": (x, y), "right": (s.nx - x, y), "bottom": (y, x), "top": (s.ny - y, x)}
     best = None
-    for name, (dist, along) in faces.items():
+    for name in SIDES:
         if getattr(s.boundary, name).kind != "cpml":
             continue
+        dist, along = _nearest_face_distance(s, name, x, y)
         if best is None or dist < best[1]:
             best = (name, dist, along)
     return best
@@ -168,9 +168,8 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     unknown = parts - ALL_PARTS
     if unknown:
         raise ValueError(f"unknown parts {sorted(unknown)}; allowed: {sorted(ALL_PARTS)}")
-    cache_before = dict((cache or _default_cache()).hits)
-    ref: Reference = reference(s, cache)
-    cached = (cache or _default_cache()).hits["computed"] == cache_before["computed"]
+    ref, source = (cache or DEFAULT_CACHE).get_with_source(s)
+    cached = source != "computed"
     every = frame_every(s)
     want_frames = bool(parts & {"global", "snapshots"})
     run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads)
@@ -232,11 +231,6 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     return m
 
 
-def _default_cache() -> ReferenceCache:
-    from .reference import DEFAULT_CACHE
-    return DEFAULT_CACHE
-
-
 def _plane_wave(s: Scenario, freqs, spectra) -> dict:
     """Normal-incidence reflection for a line source across a periodic axis."""
     first = s.probes[0]
@@ -292,4 +286,5 @@ def _specular(s: Scenario, p):
 
 
 def _nearest_face_distance(s: Scenario, side: str, x: int, y: int):
+    """(distance to `side`'s face, offset along it) of node (x, y), in cells."""
     return {"left": (x, y), "right": (s.nx - x, y), "bottom": (y, x), "top": (s.ny - y, x)}[side]

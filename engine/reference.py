@@ -151,30 +151,33 @@ class ReferenceCache:
         self.hits = {"memory": 0, "disk": 0, "computed": 0}
 
     def get(self, s: Scenario) -> Reference:
+        return self.get_with_source(s)[0]
+
+    def get_with_source(self, s: Scenario) -> tuple[Reference, str]:
+        """The reference and where it came from: 'memory', 'disk' or 'computed'."""
         key = s.reference_key()
         with self._lock:
             if key in self._memory:
                 self._memory.move_to_end(key)
                 self.hits["memory"] += 1
-                return self._memory[key]
+                return self._memory[key], "memory"
         path = cache_dir() / f"{key}.npz"
         ref = _load(path, key) if self.use_disk else None
-        if ref is not None:
-            self.hits["disk"] += 1
-        else:
+        source = "disk" if ref is not None else "computed"
+        if ref is None:
             ref = compute_reference(s)
-            self.hits["computed"] += 1
             if self.use_disk:
                 try:
                     _save(path, ref)
                 except OSError:
                     pass  # a read-only cache only costs time
         with self._lock:
+            self.hits[source] += 1
             self._memory[key] = ref
             self._memory.move_to_end(key)
             while len(self._memory) > self.entries:
                 self._memory.popitem(last=False)
-        return ref
+        return ref, source
 
     def clear_memory(self) -> None:
         with self._lock:

@@ -7,7 +7,7 @@ import pytest
 from scipy.optimize import brentq
 from scipy.special import hankel2
 
-from quietlayer.engine import (C0, ETA0, MU0, Block, Boundary, DivergenceError, Probe,
+from quietlayer.engine import (C0, MU0, Block, Boundary, DivergenceError, Probe,
                                Scenario, Side, Source, build_grid, simulate)
 
 CPML = Side(kind="cpml", cells=10, order=3.0, sigma_ratio=1.0)

@@ -8,7 +8,7 @@ import pytest
 from quietlayer.engine import Boundary, Probe, Scenario, Side, Source, sigma_opt
 from quietlayer.engine.defaults import default_scenario
 from quietlayer.engine.measure import measure
-from quietlayer.engine.reference import ReferenceCache, cache_dir, compute_reference, reference_scenario
+from quietlayer.engine.reference import ReferenceCache, cache_dir, reference_scenario
 from quietlayer.engine.theory import (layer_reflection, polynomial_reflection, sigma_for_reflection,
                                       yee_phase_velocity_error)
 
