@@ -319,16 +319,33 @@ def sum_weighted_squares(A, W):
     return total
 
 
+@njit(**_SERIAL)
+def squared_error_sums(test, ref):
+    """(sum (test - ref)^2, sum ref^2) over two flat arrays of equal size,
+    without the temporaries NumPy would make."""
+    err = 0.0
+    total = 0.0
+    for n in range(ref.size):
+        r = float(ref[n])
+        d = float(test[n]) - r
+        err += d * d
+        total += r * r
+    return err, total
+
+
 # --- the time loop ----------------------------------------------------------
 
 @njit(**_SERIAL)
 def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slabs, y_slabs,
             chunk_starts, periodic_x, periodic_y, src_i, src_j, src_coef, wave,
-            probe_i, probe_j, probe_out):
+            probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0):
     """Run n_steps leapfrog steps from first_step (see step_rows for the tuples).
 
     wave[n] is the source sample at (n + 1/2) dt; probe_out[n + 1, m]
-    receives P at probe m after step n.
+    receives P at probe m after step n.  With frame_every > 0, frames[k]
+    receives the window of P starting at (frame_i0, frame_j0) after step
+    (k + 1) frame_every: frames are taken here so a run is a few calls, not
+    one call per frame.
     """
     for n in range(first_step, first_step + n_steps):
         step_rows(P, S1, S2, secondary_coef, primary_coef, x_slabs, y_slabs, chunk_starts)
@@ -338,3 +355,7 @@ def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slab
         copy_ghosts(P, periodic_x, periodic_y)
         for m in range(probe_i.size):
             probe_out[n + 1, m] = P[probe_i[m], probe_j[m]]
+        if frame_every > 0 and (n + 1) % frame_every == 0:
+            k = (n + 1) // frame_every - 1
+            if k < frames.shape[0]:
+                frames[k] = P[frame_i0:frame_i0 + frames.shape[1], frame_j0:frame_j0 + frames.shape[2]]

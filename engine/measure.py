@@ -29,7 +29,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.special import hankel2
 
+from . import kernels
 from .errors import DivergenceError
+from .grid import build_grid
 from .reference import DEFAULT_CACHE, ReferenceCache, frame_every
 from .scenario import SIDES, Boundary, Scenario, Side
 from .simulate import simulate
@@ -172,7 +174,11 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     cached = source != "computed"
     every = frame_every(s)
     want_frames = bool(parts & {"global", "snapshots"})
-    run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads)
+    grid = build_grid(s)
+    # the images need the whole grid; the global score only the interior
+    window = None if "snapshots" in parts else grid.interior_slice()
+    run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads, grid=grid,
+                   snapshot_window=window)
     m = Measurement(scenario=s, times=run.times, test_s=run.elapsed_s,
                     reference_s=0.0 if cached else ref.elapsed_s, reference_cached=cached)
 
@@ -191,18 +197,16 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
         m.worst_peak_db = finite[m.worst_probe]
 
     if want_frames:
-        g = run.grid
-        wx, wy = g.interior_slice()
-        test_inside = run.snapshots[:, wx, wy]
-        ref_frames = ref.frames.astype(float)
-        reflected = test_inside - ref_frames
-        total = float(np.sum(ref_frames**2))
-        if "global" in parts and total > 0:
-            m.global_db = float(10 * np.log10(max(float(np.sum(reflected**2)) / total, 10 ** (FLOOR_DB / 10))))
+        test_inside = run.snapshots if window is not None else run.snapshots[(slice(None),) + grid.interior_slice()]
+        if "global" in parts:
+            err, total = kernels.squared_error_sums(np.ascontiguousarray(test_inside).reshape(-1),
+                                                    ref.frames.reshape(-1))
+            if total > 0:
+                m.global_db = float(10 * np.log10(max(err / total, 10 ** (FLOOR_DB / 10))))
         if "snapshots" in parts:
             m.frame_steps = run.snapshot_steps
             m.total_frames = run.snapshots
-            m.reflected_frames = reflected
+            m.reflected_frames = test_inside - ref.frames.astype(float)
 
     if parts & {"spectra", "angles"}:
         n, freqs, band = _spectrum_axis(s)

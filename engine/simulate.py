@@ -125,27 +125,26 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     probe_out = np.zeros((s.steps + 1, g.probe_i.size), dtype=g.dtype)
     probe_out[0] = P[g.probe_i, g.probe_j]
     source_off_step = int(math.ceil(pulse.end_time / dt))
-    snaps, snap_steps, e_steps, e_values, e_inside = [], [], [], [], []
+    e_steps, e_values, e_inside = [], [], []
     window = snapshot_window if snapshot_window is not None else (slice(None), slice(None))
+    (i0, i1, _), (j0, j1, _) = (w.indices(n) for w, n in zip(window, P.shape))
+    n_frames = s.steps // snapshot_every if snapshot_every else 0
+    frames = np.zeros((n_frames, i1 - i0, j1 - j0), dtype=g.dtype)
     interior = g.interior_slice()
     peak_energy = 0.0
     step = 0
     kernel_args = (P, S1, S2, g.secondary_coef, g.primary_coef, g.x_slabs, g.y_slabs,
                    row_chunks(g.shape[0], n_threads), g.periodic_x, g.periodic_y,
-                   g.src_i, g.src_j, g.src_coef, wave, g.probe_i, g.probe_j, probe_out)
+                   g.src_i, g.src_j, g.src_coef, wave, g.probe_i, g.probe_j, probe_out,
+                   frames, snapshot_every, i0, j0)
     kernels.advance(0, 0, *kernel_args)  # compile or load from cache outside the timing
     field_energy(g, P, S1, S2)
     numba.set_num_threads(n_threads)  # per calling thread; the kernels' prange obeys it
     t0 = time.perf_counter()
     while step < s.steps:
         stop = min(s.steps, step + check_every)
-        if snapshot_every:
-            stop = min(stop, (step // snapshot_every + 1) * snapshot_every)
         kernels.advance(step, stop - step, *kernel_args)
         step = stop
-        if snapshot_every and step % snapshot_every == 0:
-            snaps.append(P[window].copy())
-            snap_steps.append(step)
         if step % check_every == 0 or step == s.steps:
             energy = field_energy(g, P, S1, S2)
             e_steps.append(step)
@@ -167,8 +166,10 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     to_si = 1.0 if g.electric_primary else 1.0 / ETA0
     quantity = "Ez (V/m)" if g.electric_primary else "Hz (A/m)"
     probes = {p.name: probe_out[:, m].astype(float) * to_si for m, p in enumerate(s.probes)}
-    snapshots = (np.stack(snaps).astype(float) * to_si if snaps
-                 else np.zeros((0,) + P[window].shape))
+    snapshots = frames.astype(float)
+    if to_si != 1.0:
+        snapshots *= to_si
+    snap_steps = snapshot_every * np.arange(1, n_frames + 1)
     fields = {}
     if keep_fields:
         if g.electric_primary:
