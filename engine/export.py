@@ -147,13 +147,23 @@ def coefficients_npz(scenario: Scenario, path) -> Path:
 
 
 def savez_atomic(path, arrays: dict) -> Path:
-    """np.savez to a temporary file in the same folder, then os.replace: a
-    crash or a full disk leaves the old file or the new one, never half of one."""
+    """np.savez, written atomically (see _write_atomic)."""
+    return _write_atomic(path, "wb", lambda fh: np.savez(fh, **arrays))
+
+
+def write_text_atomic(path, text: str) -> Path:
+    """A UTF-8 text file, written atomically (see _write_atomic)."""
+    return _write_atomic(path, "w", lambda fh: fh.write(text))
+
+
+def _write_atomic(path, mode: str, write) -> Path:
+    """Write to a temporary file in the same folder, then os.replace: a crash
+    or a full disk leaves the old file or the new one, never half of one."""
     path = Path(path)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez(fh, **arrays)
+        with os.fdopen(fd, mode, **({} if "b" in mode else {"encoding": "utf-8", "newline": ""})) as fh:
+            write(fh)
         os.replace(tmp, path)
     except BaseException:
         try:

@@ -148,6 +148,7 @@ class ReferenceCache:
         self.use_disk = use_disk
         self._memory: OrderedDict[str, Reference] = OrderedDict()
         self._lock = threading.Lock()
+        self._computing: dict[str, threading.Lock] = {}  # key -> held while it is being fetched
         self.hits = {"memory": 0, "disk": 0, "computed": 0}
 
     def get(self, s: Scenario) -> Reference:
@@ -157,9 +158,16 @@ class ReferenceCache:
         """The reference and where it came from: 'memory', 'disk' or 'computed'."""
         key = s.reference_key()
         with self._lock:
+            pending = self._computing.setdefault(key, threading.Lock())
+        with pending:  # threads asking for the same reference wait for one run of it
+            return self._fetch(s, key)
+
+    def _fetch(self, s: Scenario, key: str) -> tuple[Reference, str]:
+        with self._lock:
             if key in self._memory:
                 self._memory.move_to_end(key)
                 self.hits["memory"] += 1
+                self._computing.pop(key, None)
                 return self._memory[key], "memory"
         path = cache_dir() / f"{key}.npz"
         ref = _load(path, key) if self.use_disk else None
@@ -177,6 +185,7 @@ class ReferenceCache:
             self._memory.move_to_end(key)
             while len(self._memory) > self.entries:
                 self._memory.popitem(last=False)
+            self._computing.pop(key, None)
         return ref, source
 
     def clear_memory(self) -> None:
