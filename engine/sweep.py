@@ -248,7 +248,7 @@ class DaskPool:
     127.0.0.1.  A worker lost mid-sweep costs no point: the scheduler runs
     its tasks again elsewhere, and each point is kept once."""
 
-    def __init__(self, address: str):
+    def __init__(self, address: str, timeout: float = 30.0):
         try:
             from distributed import Client, LocalCluster
         except ImportError:  # pragma: no cover - it is a dependency
@@ -263,11 +263,11 @@ class DaskPool:
             if not 1 <= n <= 256:
                 raise ScenarioError("dask", address, "'local:N' with N workers from 1 to 256, or a scheduler address")
             self.cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                        host="127.0.0.1", dashboard_address=None)
+                                        host="127.0.0.1", dashboard_address="127.0.0.1:0")
             self.client = Client(self.cluster)
         else:
             try:
-                self.client = Client(address, timeout=30)
+                self.client = Client(address, timeout=timeout)
             except (OSError, TimeoutError, ValueError) as exc:
                 raise ScenarioError("dask", address, f"a reachable Dask scheduler ({exc})") from None
 
