@@ -65,6 +65,42 @@ PLAYER_JS = """() => {
   return {model: player ? {start: player.start, end: player.end, value: player.value} : null, titles};
 }"""
 
+# The live figure whose title starts with a given text: each renderer's data
+# (columns as arrays of numbers or texts) and where a data point lies on the
+# screen.  Views are walked from the document's root views, so only the
+# figure on display is found.
+FIGURE_VIEW_JS = """
+function liveFigureViews(prefix) {
+  const found = [], seen = new Set();
+  const walk = (view) => {
+    if (!view || seen.has(view)) return;
+    seen.add(view);
+    const m = view.model;
+    if (m && m.title != null && typeof m.title === "object" && String(m.title.text).startsWith(prefix) &&
+        view.frame) found.push(view);
+    const children = view.child_views;
+    if (children && children[Symbol.iterator]) for (const child of children) walk(child);
+  };
+  for (const root of Object.values(window.Bokeh.index)) walk(root);
+  return found;
+}"""
+FIGURE_DATA_JS = "(prefix) => {" + FIGURE_VIEW_JS + """
+  return liveFigureViews(prefix).map(view => view.model.renderers
+    .filter(r => r.data_source && r.data_source.data).map(r => {
+      const data = r.data_source.data;
+      const entries = data instanceof Map ? [...data.entries()] : Object.entries(data);
+      return Object.fromEntries(entries.map(([k, v]) =>
+        [k, Array.from(v, x => (typeof x === "string" ? x : Number(x)))]));
+    }));
+}"""
+FIGURE_POINT_JS = "([prefix, x, y]) => {" + FIGURE_VIEW_JS + """
+  const view = liveFigureViews(prefix)[0];
+  if (!view) return null;
+  view.el.scrollIntoView({block: "center"});
+  const box = view.el.getBoundingClientRect();
+  return {x: box.left + view.frame.x_scale.compute(x), y: box.top + view.frame.y_scale.compute(y)};
+}"""
+
 # Panel's Markdown pane draws its text inside the element's own shadow root.
 SHADOW_TEXT_JS = "e => (e.shadowRoot ? e.shadowRoot.textContent : e.textContent)"
 
@@ -329,6 +365,19 @@ class Dashboard:
         state["drawn"] = self.scrubber().evaluate(
             "e => ({start: Number(e.min), end: Number(e.max), value: Number(e.value)})")
         return state
+
+    def figure_data(self, title_prefix: str) -> list[list[dict]]:
+        """Per live figure whose title starts with `title_prefix`: each renderer's data columns."""
+        return self.page.evaluate(FIGURE_DATA_JS, title_prefix)
+
+    def click_figure(self, title_prefix: str, x: float, y: float) -> None:
+        """Click the live figure at data coordinates (x, y), as a user would."""
+        where = self.page.evaluate(FIGURE_POINT_JS, [title_prefix, x, y])
+        assert where is not None, f"no live figure titled {title_prefix!r}…"
+        self.page.mouse.click(where["x"], where["y"])
+
+    def open_tab(self, title: str) -> None:
+        self.page.locator(".bk-tab", has_text=title).first.click()
 
     def href(self) -> str:
         # page.url trails history.replaceState by one change; the address bar does not
