@@ -6,6 +6,7 @@ from __future__ import annotations
 import html
 import io
 
+import holoviews as hv
 import panel as pn
 from bokeh.resources import INLINE
 
@@ -54,6 +55,8 @@ def report_html(m, late=None) -> str:
     """The report as one HTML document (text)."""
     if m is None:
         raise ValueError("nothing measured yet")
+    if "bokeh" not in hv.Store.renderers:
+        hv.extension("bokeh", logo=False)  # called outside the page (the command line)
     figures = plots.report_figures(m)
     body = pn.Column(
         pn.pane.Markdown(f"# Quietlayer report — {html.escape(m.scenario.title or 'custom scenario')}"),

@@ -164,6 +164,9 @@ def _write_atomic(path, mode: str, write) -> Path:
     try:
         with os.fdopen(fd, mode, **({} if "b" in mode else {"encoding": "utf-8", "newline": ""})) as fh:
             write(fh)
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)  # mkstemp makes 0600; a handed-over file should read like any other
         os.replace(tmp, path)
     except BaseException:
         try:

@@ -85,6 +85,7 @@ class Measurement:
     global_db: float = math.nan
     freqs: np.ndarray | None = None
     spectra: dict = field(default_factory=dict)
+    band_worst_db: dict = field(default_factory=dict)  # per probe, largest in-band reflection, dB
     theory_spectra: dict = field(default_factory=dict)  # |R(theta_probe, f)| of the nearest face
     probe_angles: dict = field(default_factory=dict)  # degrees, specular angle on the nearest face
     angles: AngleCurve | None = None
@@ -219,6 +220,8 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
                 ratio = np.abs(err_spectra[p.name][band]) / np.where(rs > 0, rs, np.inf)
                 masked = rs < np.abs(ref_spectra[p.name]).max() * 10 ** (SPECTRUM_MASK_DB / 20)
                 m.spectra[p.name] = np.where(masked, np.nan, ratio)
+                if not masked.all():
+                    m.band_worst_db[p.name] = float(to_db(np.nanmax(m.spectra[p.name])))
                 geometry = _specular(s, p)
                 if geometry is not None:
                     side, angle = geometry[0], geometry[1]

@@ -14,6 +14,7 @@ import math
 import tomllib
 import warnings
 from dataclasses import asdict, dataclass, field, fields, replace
+from pathlib import Path
 from typing import Any
 
 import tomli_w
@@ -419,19 +420,21 @@ class Scenario:
         return scenario_to_dict(self)
 
     @classmethod
-    def from_dict(cls, data: dict) -> "Scenario":
-        return scenario_from_dict(data)
+    def from_dict(cls, data: dict, base_dir=None) -> "Scenario":
+        """base_dir: the folder relative `profile_file` names start from; without
+        it a `profile_file` is an error (the text did not come from a file)."""
+        return scenario_from_dict(data, base_dir)
 
     def to_toml(self) -> str:
         return tomli_w.dumps(self.to_dict())
 
     @classmethod
-    def from_toml(cls, text: str) -> "Scenario":
+    def from_toml(cls, text: str, base_dir=None) -> "Scenario":
         try:
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
             raise ScenarioError("file", "TOML", f"valid TOML ({exc})") from None
-        return cls.from_dict(data)
+        return cls.from_dict(data, base_dir)
 
     def key(self) -> str:
         """Stable hash of everything that affects the fields (not the title)."""
@@ -481,9 +484,47 @@ def scenario_to_dict(s: Scenario) -> dict[str, Any]:
     return data
 
 
-def _side_from_dict(name: str, shared: dict, own: dict) -> Side:
+def _profile_from_file(field: str, value, base_dir) -> Profile:
+    """The Profile in the CSV file `value` names (relative to base_dir)."""
+    from .export import profile_from_csv  # export imports this module
+
+    if base_dir is None:
+        # text from elsewhere (a page upload) must not make the reader open files of its choosing
+        raise ScenarioError(field, value, "only in a scenario read from a file (give the table inline "
+                                          "as profile = {depth, sigma, kappa, alpha} instead)")
+    if not isinstance(value, str) or not value.strip():
+        raise ScenarioError(field, value, "the name of a CSV file with columns depth, sigma, kappa, alpha")
+    path = Path(value).expanduser()
+    if not path.is_absolute():
+        path = Path(base_dir) / path
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except OSError as exc:
+        raise ScenarioError(field, value, f"a readable CSV file ({exc.strerror or exc}: {path})") from None
+    except UnicodeDecodeError:
+        raise ScenarioError(field, value, f"a UTF-8 text file ({path} is not)") from None
+    try:
+        return profile_from_csv(text, source_name="profile")
+    except ScenarioError as exc:
+        raise ScenarioError(field, value, f"a valid profile table; in {path.name}: {exc}") from None
+
+
+def _side_from_dict(name: str, shared: dict, own: dict, base_dir=None) -> Side:
     merged = {**shared, **own}
-    _check_keys(f"layer.{name}", merged, _SIDE_KEYS)
+    _check_keys(f"layer.{name}", merged, _SIDE_KEYS | {"profile_file"})
+    if "profile_file" in merged:
+        # a side's own entry overrides a shared one of the other form
+        if "profile" in own and "profile_file" not in own:
+            merged.pop("profile_file")
+        elif "profile_file" in own and "profile" not in own:
+            merged.pop("profile", None)
+        if "profile" in merged and "profile_file" in merged:
+            raise ScenarioError(f"layer.{name}.profile_file", merged["profile_file"],
+                                "absent when an inline profile table is given (give one of the two)")
+    profile_file = merged.pop("profile_file", None)
+    if profile_file is not None:
+        return Side(**merged, profile=_profile_from_file(f"layer.{name}.profile_file", profile_file, base_dir),
+                    label=f"layer.{name}")
     profile = merged.pop("profile", None)
     if profile is not None:
         _check_keys(f"layer.{name}.profile", profile, ("depth", "sigma", "kappa", "alpha"))
@@ -494,11 +535,15 @@ def _side_from_dict(name: str, shared: dict, own: dict) -> Side:
     return Side(**merged, profile=profile, label=f"layer.{name}")
 
 
-def scenario_from_dict(data: dict) -> Scenario:
+def scenario_from_dict(data: dict, base_dir=None) -> Scenario:
     """Build a Scenario from its dict/TOML form; unknown keys are errors.
 
     The [layer] table may hold keys shared by all sides plus a sub-table per
-    side (left, right, bottom, top) that overrides them.
+    side (left, right, bottom, top) that overrides them.  A side's profile is
+    an inline table `profile = {depth, sigma, kappa, alpha}` or
+    `profile_file = "name.csv"` (read by export.profile_from_csv; a relative
+    name starts from base_dir; without base_dir it is refused, so text from
+    elsewhere cannot make the reader open files).
     """
     _check_keys("", data, set(_SCALAR_KEYS) | {"source", "probes", "blocks", "layer"})
     for key in ("dx", "dy", "nx", "ny", "source"):
@@ -532,7 +577,7 @@ def scenario_from_dict(data: dict) -> Scenario:
         own = layer.get(name, {})
         if not isinstance(own, dict):
             raise ScenarioError(f"layer.{name}", own, "a table")
-        sides[name] = _side_from_dict(name, shared, own)
+        sides[name] = _side_from_dict(name, shared, own, base_dir)
     scalars = {k: data[k] for k in _SCALAR_KEYS if k in data}
     return Scenario(source=Source(**src), probes=tuple(probes), blocks=tuple(blocks),
                     boundary=Boundary(**sides), **scalars)

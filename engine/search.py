@@ -173,7 +173,7 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
 
         # stage 2: Nelder-Mead in the unit cube from the best sample
         best_row = min(path, key=lambda r: _score_of(r, score))
-        u0 = np.array([b.to_unit(best_row["point"][b.name]) for b in bounds])
+        u0 = np.clip([b.to_unit(best_row["point"][b.name]) for b in bounds], 0.0, 1.0)
 
         def objective(u):
             if len(path) >= budget or stopped:

@@ -29,7 +29,7 @@ import numpy as np
 
 from .errors import DivergenceError, ScenarioError
 from .export import write_text_atomic
-from .measure import measure, to_db
+from .measure import measure
 from .reference import ReferenceCache
 from .scenario import SIDES, Scenario
 from .units import parse_frequency, parse_length
@@ -203,9 +203,9 @@ def evaluate_point(base: Scenario, point: dict, *, threads: int | None = None,
     except Exception as exc:  # noqa: BLE001 - one bad point must not end a sweep
         row.update(status="failed", reason=f"{type(exc).__name__}: {exc}")
     else:
-        band = [np.nanmax(v) for v in m.spectra.values() if np.isfinite(v).any()]
+        band = m.band_worst_db.values()
         row.update(worst_peak_db=m.worst_peak_db, worst_probe=m.worst_probe, global_db=m.global_db,
-                   worst_band_db=float(to_db(max(band))) if band else math.nan,
+                   worst_band_db=max(band) if band else math.nan,
                    peak_db=dict(m.peak_db))
     row["run_s"] = time.perf_counter() - t0
     return row
