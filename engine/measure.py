@@ -38,7 +38,7 @@ from .simulate import simulate
 from .theory import layer_reflection
 from .units import C0
 
-ALL_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots", "late_time"})
+ALL_PARTS = frozenset({"probes", "band", "spectra", "angles", "global", "snapshots", "late_time"})
 FLOOR_DB = -200.0
 SPECTRUM_MASK_DB = -40.0
 LATE_STEPS = 20_000
@@ -163,7 +163,9 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
             late_steps: int = LATE_STEPS, threads: int | None = None) -> Measurement:
     """Measure the layer of `scenario` (or `layer` put on its non-periodic sides).
 
-    parts: any of ALL_PARTS; the headline scores ('probes') are always made.
+    parts: any of ALL_PARTS; the headline scores ('probes') are always made;
+    'band' gives the spectra and their worst in-band value without the theory
+    curves beside them ('spectra' gives both).
     """
     t_start = time.perf_counter()
     s = _with_layer(scenario, layer)
@@ -209,11 +211,11 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
             m.total_frames = run.snapshots
             m.reflected_frames = test_inside - ref.frames.astype(float)
 
-    if parts & {"spectra", "angles"}:
+    if parts & {"band", "spectra", "angles"}:
         n, freqs, band = _spectrum_axis(s)
         ref_spectra = {p.name: np.fft.rfft(ref.probes[p.name], n) for p in s.probes}
         err_spectra = {p.name: np.fft.rfft(errors[p.name], n) for p in s.probes}
-        if "spectra" in parts:
+        if parts & {"band", "spectra"}:
             m.freqs = freqs[band]
             for p in s.probes:
                 rs = np.abs(ref_spectra[p.name][band])
@@ -222,12 +224,12 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
                 m.spectra[p.name] = np.where(masked, np.nan, ratio)
                 if not masked.all():
                     m.band_worst_db[p.name] = float(to_db(np.nanmax(m.spectra[p.name])))
-                geometry = _specular(s, p)
+                geometry = _specular(s, p) if "spectra" in parts else None
                 if geometry is not None:
                     side, angle = geometry[0], geometry[1]
                     m.probe_angles[p.name] = math.degrees(angle)
                     m.theory_spectra[p.name] = layer_reflection(s, side, m.freqs, angle)
-            if s.source.line and s.probes:
+            if s.source.line and s.probes and "spectra" in parts:
                 m.plane_wave = _plane_wave(s, freqs[band], m.spectra)
         if "angles" in parts and not s.source.line:
             m.angles = _angle_curve(s, freqs, band, ref_spectra, err_spectra)

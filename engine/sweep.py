@@ -18,9 +18,13 @@ import csv
 import io
 import itertools
 import math
+import multiprocessing
 import os
+import signal
+import threading
 import time
-from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, ThreadPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Iterable, Iterator
@@ -57,7 +61,7 @@ PROBLEM_PARAMETERS = {
 INTEGER_PARAMETERS = {"cells", "steps"}
 _PARSERS = {"cell": parse_length, "dx": parse_length, "dy": parse_length,
             "f_min": parse_frequency, "f_max": parse_frequency}
-SWEEP_PARTS = frozenset({"probes", "global", "spectra"})
+SWEEP_PARTS = frozenset({"probes", "global", "band"})
 SCORES = ("worst_peak_db", "global_db", "worst_band_db")
 STATUSES = ("ok", "invalid", "diverged", "failed")
 
@@ -213,33 +217,114 @@ def evaluate_point(base: Scenario, point: dict, *, threads: int | None = None,
 
 # --- executors ------------------------------------------------------------------
 
-class LocalPool:
-    """Threads on this machine, one point each (the kernels release the GIL)."""
+PROCESS_MIN_POINTS = 64  # below this the worker processes' start-up (~1.5 s) costs more than the GIL does
+_PROCESS_POOLS: dict[int, ProcessPoolExecutor] = {}
+_PROCESS_POOLS_LOCK = threading.Lock()
 
-    def __init__(self, workers: int | None = None):
+
+def _quiet_worker() -> None:
+    """Worker processes leave Ctrl-C to the program that started them."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _shared_processes(workers: int) -> ProcessPoolExecutor:
+    """One pool of worker processes per size, started on first use and kept for
+    the program's life, so later sweeps find the kernels already loaded."""
+    with _PROCESS_POOLS_LOCK:
+        pool = _PROCESS_POOLS.get(workers)
+        if pool is None:
+            # forkserver: workers start from a clean process, safe in a program that runs threads
+            context = multiprocessing.get_context("forkserver")
+            context.set_forkserver_preload(["quietlayer.engine.sweep"])
+            pool = ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_quiet_worker)
+            _PROCESS_POOLS[workers] = pool
+        return pool
+
+
+def _drop_processes(workers: int) -> None:
+    with _PROCESS_POOLS_LOCK:
+        pool = _PROCESS_POOLS.pop(workers, None)
+    if pool is not None:
+        pool.shutdown(wait=False, cancel_futures=True)
+
+
+class LocalPool:
+    """Every core of this machine, one point per worker at a time.
+
+    mode 'threads': the kernels release the GIL, start at once and share the
+    reference cache, but the Python around each run (a few ms per point)
+    takes turns; 'processes': no such turns, after a start-up of about 1.5 s
+    (paid once per program: the worker processes are kept); 'auto' picks
+    processes for sweeps of PROCESS_MIN_POINTS points or more.  Rows are the
+    same bits either way.  If a worker process dies, the points not yet done
+    are run in threads.
+    """
+
+    MODES = ("auto", "threads", "processes")
+
+    def __init__(self, workers: int | None = None, mode: str = "auto"):
         self.workers = max(1, workers or os.cpu_count() or 1)
+        if mode not in self.MODES:
+            raise ScenarioError("mode", mode, "one of " + ", ".join(self.MODES))
+        self.mode = mode
+        self.last_mode = ""
+
+    def mode_for(self, n_points: int) -> str:
+        if self.workers == 1 or self.mode == "threads":
+            return "threads"
+        if self.mode == "processes" or n_points >= PROCESS_MIN_POINTS:
+            return "processes"
+        return "threads"
 
     @property
     def description(self) -> str:
-        return f"local pool, {self.workers} worker{'s' if self.workers > 1 else ''}"
+        kind = {"threads": " threads", "processes": " processes"}.get(self.last_mode or self.mode, "")
+        return f"local pool, {self.workers} worker{'s' if self.workers > 1 else ''}{kind}"
 
     def results(self, base: Scenario, points: list[dict], cache=None) -> Iterator[tuple[int, dict]]:
         """(index, row) as points finish; closing the iterator cancels the rest."""
+        self.last_mode = self.mode_for(len(points))
+        todo = dict(enumerate(points))
+        if self.last_mode == "processes":
+            try:
+                for index, row in self._in_processes(base, todo):
+                    todo.pop(index)
+                    yield index, row
+                return
+            except BrokenProcessPool:
+                _drop_processes(self.workers)
+                self.last_mode = "threads"
+        yield from self._in_threads(base, todo, cache)
+
+    def _in_processes(self, base, todo: dict) -> Iterator[tuple[int, dict]]:
+        pool = _shared_processes(self.workers)
+        futures = {pool.submit(evaluate_point, base, p, threads=1): i for i, p in todo.items()}
+        try:
+            yield from _as_they_finish(futures)
+        finally:
+            for fut in futures:
+                fut.cancel()  # the ones already running finish in their workers, unread
+
+    def _in_threads(self, base, todo: dict, cache) -> Iterator[tuple[int, dict]]:
         threads = 1 if self.workers > 1 else None
         pool = ThreadPoolExecutor(max_workers=self.workers, thread_name_prefix="quietlayer-sweep")
         try:
             futures = {pool.submit(evaluate_point, base, p, threads=threads, cache=cache): i
-                       for i, p in enumerate(points)}
-            pending = set(futures)
-            while pending:
-                done, pending = wait(pending, return_when=FIRST_COMPLETED)
-                for fut in done:
-                    yield futures[fut], fut.result()
+                       for i, p in todo.items()}
+            yield from _as_they_finish(futures)
         finally:
             pool.shutdown(wait=True, cancel_futures=True)
 
     def close(self) -> None:
-        pass
+        pass  # worker processes are shared and kept; threads end with each sweep
+
+
+def _as_they_finish(futures: dict) -> Iterator[tuple[int, dict]]:
+    pending = set(futures)
+    while pending:
+        done, pending = wait(pending, return_when=FIRST_COMPLETED)
+        for fut in done:
+            yield futures[fut], fut.result()
 
 
 class DaskPool:

@@ -79,6 +79,29 @@ def test_sweep_rows_equal_single_measurements():
     assert all(same_scores(serial.rows[i], table.rows[i]) for i in table.rows)
 
 
+def test_worker_processes_give_the_same_rows_and_survive_a_lost_worker():
+    pool = LocalPool(2, mode="processes")
+    table = run_sweep(BASE, POINTS, pool)
+    assert pool.last_mode == "processes" and table.complete
+    threads = run_sweep(BASE, POINTS, LocalPool(2, mode="threads"))
+    assert all(same_scores(table.rows[i], threads.rows[i]) for i in threads.rows)
+    # a worker process killed mid-sweep: the points not yet done run in threads, each once
+    points = grid_points([parse_vary("order=1:6:6"), parse_vary("sigma_ratio=0.25:2:4")])
+    workers = list(sweep_module._shared_processes(2)._processes)
+
+    def progress(done, total, index, row):
+        if done == 2:
+            os.kill(workers[0], signal.SIGKILL)
+
+    table = run_sweep(BASE, points, pool, progress=progress)
+    assert pool.last_mode == "threads", "the lost worker went unnoticed"
+    assert table.complete and sorted(table.rows) == list(range(len(points)))
+    assert all(table.rows[i]["point"] == points[i] and table.rows[i]["status"] == "ok" for i in table.rows)
+    assert LocalPool(2).mode_for(sweep_module.PROCESS_MIN_POINTS - 1) == "threads"
+    assert LocalPool(2).mode_for(sweep_module.PROCESS_MIN_POINTS) == "processes"
+    assert LocalPool(1).mode_for(10_000) == "threads"
+
+
 def test_a_bad_point_is_recorded_and_the_sweep_goes_on(monkeypatch):
     real = sweep_module.measure
 
