@@ -169,9 +169,11 @@ def angle_plot(m: Measurement, pinned: Measurement | None, fontscale: float = 1.
 
 
 def profile_plots(m: Measurement | None, fontscale: float = 1.0):
-    """sigma and alpha, kappa, b and c against depth for the first CPML side."""
+    """sigma and alpha, kappa, b and c against depth for one CPML side: the
+    first with a profile of the user's own, else the first."""
     tables = layer_tables(m.scenario) if m is not None else {}
-    side = next(iter(tables), None)
+    own = [name for name in tables if getattr(m.scenario.boundary, name).profile is not None]
+    side = (own or list(tables) or [None])[0]
     t = tables.get(side)
     unit_scale, unit = length_unit(t.node_depth[-1]) if t is not None else (1e-3, "mm")
     kd = f"depth ({unit})"
@@ -201,9 +203,17 @@ def profile_plots(m: Measurement | None, fontscale: float = 1.0):
 def report_figures(m: Measurement) -> list:
     """Static figures for the standalone report."""
     frame = int(np.argmax([np.abs(f).max() for f in m.reflected_frames])) if m.reflected_frames is not None else 0
-    figures = [field_image(m, frame, False), field_image(m, frame, True), spectrum_plot(m, None),
-               error_plot(m, None), angle_plot(m, None)]
+    curves = [_without_empty_layers(f) for f in (spectrum_plot(m, None), error_plot(m, None), angle_plot(m, None))]
+    figures = [field_image(m, frame, False), field_image(m, frame, True)] + curves
     return figures + list(profile_plots(m))
+
+
+def _without_empty_layers(overlay):
+    """A report has no pinned setting and no live updates: drop the empty
+    layers (and their legend entries) the page keeps for its fixed structure."""
+    options = dict(overlay.opts.get("plot").kwargs)
+    options["title"] = options.get("title", "").replace(", dotted: A)", ")").replace(" (dotted: A)", "")
+    return hv.Overlay([layer for layer in overlay if len(layer)]).opts(**options)
 
 
 def finite_or_dash(value: float, fmt: str = "{:.1f}") -> str:
