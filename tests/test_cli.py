@@ -125,6 +125,32 @@ def test_check_exit_code_follows_the_budget(capsys):
     assert code == 1 and "FAIL" in out and "above the budget" in out
 
 
+def test_check_fails_a_growing_or_diverging_run(monkeypatch, capsys):
+    # common practice, no source: a layer whose energy grows late, or a run
+    # that blows up, is not safe to launch whatever its early reflection
+    from quietlayer.engine import measure as measure_module
+    from quietlayer.engine.errors import DivergenceError
+    from quietlayer.engine.measure import LateTime
+
+    def growing(s, steps=20_000, progress=None):
+        return LateTime(status="growing", steps=steps, growth_db_per_1000=4.0, final_db=3.0,
+                        energy_steps=np.zeros(0, int), interior_energy=np.zeros(0), layer_energy=np.zeros(0),
+                        message="energy grows 4 dB per 1000 steps late in the run")
+
+    monkeypatch.setattr(measure_module, "late_time_check", growing)
+    code, out, _ = _run(["check", DEMO, "--budget", "-30"], capsys)
+    assert code == 1 and "FAIL" in out and "growing" in out
+    code, out, _ = _run(["check", DEMO, "--budget", "-30", "--json"], capsys)
+    assert code == 1 and _strict_json(out)["passed"] is False
+
+    def diverging(*args, **kwargs):
+        raise DivergenceError(250, "the fields are no longer finite")
+
+    monkeypatch.setattr(measure_module, "simulate", diverging)
+    code, out, err = _run(["check", DEMO, "--budget", "-30", "--no-late"], capsys)
+    assert code == 1 and "step 250" in out + err and "Traceback" not in out + err
+
+
 def test_check_json_is_strict_json_and_consistent(capsys):
     code, out, _ = _run(["check", DEMO, "--json", "--late-steps", "4000"], capsys)
     data = _strict_json(out)
