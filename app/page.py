@@ -652,6 +652,8 @@ SWEEP_CHOICES = {
 SWEEP_LABELS = {name: choice.label for name, choice in SWEEP_CHOICES.items()}
 SWEEP_MAX_COUNT = 40  # values per parameter: 40 x 40 = 1600 points, tens of seconds on two cores
 SWEEP_REDRAW_S = 0.4  # the map is redrawn at most this often while points come in
+SWEEP_STATUS_S = 0.15  # and the progress bar moved at most this often: a flood of updates would
+                       # keep the page's event loop from hearing the Cancel button
 SCORE_OPTIONS = {label.replace(" (dB)", ""): key for key, label in plots.SWEEP_SCORE_LABELS.items()}
 
 
@@ -831,6 +833,7 @@ class SweepView:
     def _work(self, generation: int, base: Scenario, points: list, table: SweepTable, stop: threading.Event):
         """Worker thread: run the sweep, sending a copy of the table back now and then."""
         last = [time.monotonic()]
+        last_status = [0.0]
 
         def progress(done, total, index, row):
             now = time.monotonic()
@@ -839,7 +842,9 @@ class SweepView:
             if now - last[0] >= max(SWEEP_REDRAW_S, 4 * self.draw_s):
                 last[0] = now
                 copy = replace(table, rows=dict(table.rows))
-            self.page._call_soon(self._progress, generation, done, copy)
+            if copy is not None or now - last_status[0] >= SWEEP_STATUS_S:
+                last_status[0] = now
+                self.page._call_soon(self._progress, generation, done, copy)
             return not stop.is_set()
 
         try:
