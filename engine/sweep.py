@@ -278,8 +278,10 @@ class LocalPool:
 
     @property
     def description(self) -> str:
-        kind = {"threads": " threads", "processes": " processes"}.get(self.last_mode or self.mode, "")
-        return f"local pool, {self.workers} worker{'s' if self.workers > 1 else ''}{kind}"
+        """'local pool, 2 workers', and once it has run, of which kind."""
+        kind = {"threads": " thread", "processes": " process"}.get(self.last_mode, "")
+        plural = "" if self.workers == 1 else ("es" if kind == " process" else "s")
+        return f"local pool, {self.workers} worker{kind}{plural}"
 
     def results(self, base: Scenario, points: list[dict], cache=None) -> Iterator[tuple[int, dict]]:
         """(index, row) as points finish; closing the iterator cancels the rest."""
@@ -466,7 +468,6 @@ def run_sweep(base: Scenario, points: list[dict], executor=None, *,
     table.parameters, table.points = names, points
     own = executor is None
     executor = executor or LocalPool()
-    table.executor = executor.description
     t0 = time.perf_counter()
     stream = executor.results(base, points, cache=cache)
     try:
@@ -480,6 +481,7 @@ def run_sweep(base: Scenario, points: list[dict], executor=None, *,
     finally:
         stream.close()
         table.elapsed_s = time.perf_counter() - t0
+        table.executor = executor.description
         if own:
             executor.close()
     return table
