@@ -222,9 +222,37 @@ _PROCESS_POOLS: dict[int, ProcessPoolExecutor] = {}
 _PROCESS_POOLS_LOCK = threading.Lock()
 
 
-def _quiet_worker() -> None:
-    """Worker processes leave Ctrl-C to the program that started them."""
+PARENT_CHECK_S = 0.5
+
+
+def _worker_start(parent_pid: int) -> None:
+    """Worker processes leave Ctrl-C to the program that started them, and end
+    when it does: a program killed outright never tells its pool to stop."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    threading.Thread(target=_exit_with, args=(parent_pid,), daemon=True, name="quietlayer-parent-watch").start()
+
+
+def _exit_with(parent_pid: int) -> None:
+    while process_running(parent_pid):
+        time.sleep(PARENT_CHECK_S)
+    os._exit(0)
+
+
+def process_running(pid: int) -> bool:
+    """Whether process `pid` runs (a zombie, ended but not yet reaped, does not)."""
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            return fh.read().rsplit(") ", 1)[1][:1] != "Z"
+    except FileNotFoundError:
+        return False
+    except OSError:  # no /proc here: ask the kernel
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            return False  # the number now belongs to someone else's process
+        return True
 
 
 def _shared_processes(workers: int) -> ProcessPoolExecutor:
@@ -236,7 +264,8 @@ def _shared_processes(workers: int) -> ProcessPoolExecutor:
             # forkserver: workers start from a clean process, safe in a program that runs threads
             context = multiprocessing.get_context("forkserver")
             context.set_forkserver_preload(["quietlayer.engine.sweep"])
-            pool = ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_quiet_worker)
+            pool = ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_worker_start,
+                                       initargs=(os.getpid(),))
             _PROCESS_POOLS[workers] = pool
         return pool
 

@@ -12,6 +12,8 @@ import csv
 import io
 import os
 import signal
+import subprocess
+import sys
 import time
 
 import pytest
@@ -100,6 +102,35 @@ def test_worker_processes_give_the_same_rows_and_survive_a_lost_worker():
     assert LocalPool(2).mode_for(sweep_module.PROCESS_MIN_POINTS - 1) == "threads"
     assert LocalPool(2).mode_for(sweep_module.PROCESS_MIN_POINTS) == "processes"
     assert LocalPool(1).mode_for(10_000) == "threads"
+
+
+ORPHAN_SCRIPT = """
+import os, signal, sys
+from quietlayer.engine.defaults import default_scenario
+from quietlayer.engine import sweep
+pool = sweep.LocalPool(2, mode="processes")
+sweep.run_sweep(default_scenario(), [{"order": 2}, {"order": 3}], pool)
+print(" ".join(str(pid) for pid in sweep._shared_processes(2)._processes), flush=True)
+os.kill(os.getpid(), signal.SIGKILL)  # killed outright: no chance to stop its pool
+"""
+
+
+def test_worker_processes_end_when_their_program_is_killed():
+    # the program's output pipe stays open while its workers live: read one line, not to the end
+    proc = subprocess.Popen([sys.executable, "-c", ORPHAN_SCRIPT], stdout=subprocess.PIPE, text=True)
+    try:
+        workers = [int(pid) for pid in proc.stdout.readline().split()]
+        assert len(workers) == 2
+        assert proc.wait(timeout=60) == -signal.SIGKILL
+        deadline = time.monotonic() + 20
+        alive = workers
+        while alive and time.monotonic() < deadline:
+            time.sleep(0.2)
+            alive = [pid for pid in alive if sweep_module.process_running(pid)]
+        assert not alive, f"worker processes {alive} outlived their program"
+    finally:
+        proc.kill()
+        proc.stdout.close()
 
 
 def test_a_bad_point_is_recorded_and_the_sweep_goes_on(monkeypatch):
