@@ -199,8 +199,10 @@ def field_steps(dashboard) -> list[int]:
 
 def test_time_scrubber_moves_both_field_images(dashboard):
     dashboard.open()
-    shown = field_steps(dashboard)
-    assert len(shown) == 2 and shown[0] == shown[1] > 0, shown
+    # the figures follow the headline one by one: wait for both images' titles
+    shown = dashboard.wait_for("both field images", lambda: field_steps(dashboard), lambda s: len(s) == 2,
+                               timeout=30)
+    assert shown[0] == shown[1] > 0, shown
 
     scrubber = dashboard.scrubber()
     scrubber.fill("0")  # dragged to the start of the run
