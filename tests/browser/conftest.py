@@ -243,7 +243,16 @@ class Dashboard:
         seconds = time.perf_counter() - started
         if settle:
             self.wait_idle()
+            self.wait_figures()
         return seconds
+
+    def wait_figures(self, timeout: float = RESULT_S) -> None:
+        """The figures follow the headline one by one: wait for the spectrum and both field images."""
+        def ready():
+            titles = self.figure_titles()
+            images = [t for t in titles if t.startswith(("total field", "reflected only"))]
+            return len(self.page.evaluate(SPECTRUM_JS)), len(images)
+        self.wait_for("the spectrum and both field images", ready, lambda v: v == (1, 2), timeout)
 
     def wait_for(self, what: str, read, ok, timeout: float = RESULT_S, poll_ms: float = 40):
         deadline = time.monotonic() + timeout
