@@ -377,10 +377,19 @@ def _dask_address(text: str) -> str:
     return text
 
 
+SCORE_CHOICES = ("worst_peak_db", "global_db", "worst_band_db")  # engine.sweep.SCORES, without importing the engine for --help
+
+
+def _add_score_option(parser, purpose: str) -> None:
+    parser.add_argument("--score", choices=SCORE_CHOICES, default="worst_peak_db",
+                        help=f"{purpose} (default worst_peak_db)")
+
+
 def _add_executor_options(parser) -> None:
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--workers", type=_workers, metavar="N",
-                       help="threads on this machine (default: one per core)")
+                       help="workers on this machine (default: one per core; threads for small sweeps, "
+                            "processes from 64 points)")
     where.add_argument("--dask", metavar="ADDRESS", type=_dask_address,
                        help="run on Dask: 'local:N' starts N worker processes here, "
                             "'tcp://host:8786' uses a running scheduler")
@@ -475,8 +484,7 @@ def build_parser() -> argparse.ArgumentParser:
     sweep.add_argument("--vary", action="append", required=True, metavar="NAME=START:STOP:COUNT",
                        help="a parameter and its values (repeat for more axes)")
     sweep.add_argument("--out", required=True, metavar="FILE.csv", help="where to write the table")
-    sweep.add_argument("--score", choices=("worst_peak_db", "global_db", "worst_band_db"), default="worst_peak_db",
-                       help="score that picks the best point shown at the end (default worst_peak_db)")
+    _add_score_option(sweep, "score that picks the best point shown at the end")
     _add_executor_options(sweep)
 
     tune = commands.add_parser(
@@ -509,8 +517,7 @@ def build_parser() -> argparse.ArgumentParser:
                       default=4, metavar="CELLS", help="thinnest layer tried with --target (default 4)")
     tune.add_argument("--max-cells", type=_ranged(int, 1, 500, "a whole number of cells from 1 to 500"),
                       default=40, metavar="CELLS", help="thickest layer tried with --target (default 40)")
-    tune.add_argument("--score", choices=("worst_peak_db", "global_db", "worst_band_db"), default="worst_peak_db",
-                      help="score to minimise (default worst_peak_db)")
+    _add_score_option(tune, "score to minimise")
     tune.add_argument("--write", metavar="OUT.toml", help="write the scenario with the tuned layer to this file")
     _add_executor_options(tune)
 
@@ -559,7 +566,6 @@ def _executor(args):
     from quietlayer.engine.sweep import make_executor
     if args.dask:
         import logging
-        import os
         # Dask's routine notices (a cancelled task after Ctrl-C...) are not the user's business;
         # the variable reaches the worker processes too
         os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "error")
@@ -747,11 +753,15 @@ def _run_sweep(args) -> int:
         executor = WatchedExecutor(_executor(args), stop)
         console.note(f"quietlayer: sweeping {len(points)} points of {args.scenario} on {executor.description}")
 
+        best_db = [math.inf]  # kept as points come in: table.best() reads every row
+
         def on_point(done, total, index, row):
-            best = table.best(args.score)
+            value = row.get(args.score, math.nan) if row["status"] == "ok" else math.nan
+            if math.isfinite(value) and value < best_db[0]:
+                best_db[0] = value
             shown = f"{_point_text(row['point'])}: {_row_text(row, args.score)}"
-            if console.tty and best is not None:
-                shown = f"best {_db(best[1][args.score])}  last {shown}"
+            if console.tty and math.isfinite(best_db[0]):
+                shown = f"best {_db(best_db[0])}  last {shown}"
             console.bar("sweep", done, total, shown, started)
             if time.monotonic() - last_write[0] > CHECKPOINT_S and done < total:
                 write_table()

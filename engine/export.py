@@ -146,6 +146,10 @@ def coefficients_npz(scenario: Scenario, path) -> Path:
     return savez_atomic(path, arrays)
 
 
+_UMASK = os.umask(0)  # read once, at import: umask can only be read by setting it
+os.umask(_UMASK)
+
+
 def savez_atomic(path, arrays: dict) -> Path:
     """np.savez, written atomically (see _write_atomic)."""
     return _write_atomic(path, "wb", lambda fh: np.savez(fh, **arrays))
@@ -164,9 +168,7 @@ def _write_atomic(path, mode: str, write) -> Path:
     try:
         with os.fdopen(fd, mode, **({} if "b" in mode else {"encoding": "utf-8", "newline": ""})) as fh:
             write(fh)
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp, 0o666 & ~mask)  # mkstemp makes 0600; a handed-over file should read like any other
+        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; a handed-over file should read like any other
         os.replace(tmp, path)
     except BaseException:
         try:

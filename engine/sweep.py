@@ -63,13 +63,6 @@ _PARSERS = {"cell": parse_length, "dx": parse_length, "dy": parse_length,
             "f_min": parse_frequency, "f_max": parse_frequency}
 SWEEP_PARTS = frozenset({"probes", "global", "band"})
 SCORES = ("worst_peak_db", "global_db", "worst_band_db")
-STATUSES = ("ok", "invalid", "diverged", "failed")
-
-
-def parameter_names() -> list[str]:
-    """Every name a point may use."""
-    return (list(LAYER_PARAMETERS) + list(PROBLEM_PARAMETERS)
-            + [f"{side}.{key}" for side in SIDES for key in LAYER_PARAMETERS])
 
 
 def _split_name(name: str) -> tuple[str | None, str]:
@@ -131,8 +124,7 @@ def parse_vary(text: str) -> Axis:
         log = len(parts) == 4 and parts[3] == "log"
         if len(parts) not in (3, 4) or (len(parts) == 4 and not log):
             raise ScenarioError(f"vary {name}", spec, form)
-        lo, hi = (float(_value(name, p)) if _split_name(name)[1] in INTEGER_PARAMETERS else _value(name, p)
-                  for p in parts[:2])
+        lo, hi = (float(_value(name, p)) for p in parts[:2])
         try:
             count = int(parts[2])
         except ValueError:
@@ -456,12 +448,13 @@ class SweepTable:
     def records(self) -> list[dict]:
         """Flat rows with every column (blank where a point has no score)."""
         out = []
+        probes = self.probe_names()
         for i in sorted(self.rows):
             r = self.rows[i]
             rec = {"index": i, **{p: r["point"].get(p, "") for p in self.parameters}, "status": r["status"]}
             for key in SCORES + ("worst_probe",):
                 rec[key] = r.get(key, "")
-            for n in self.probe_names():
+            for n in probes:
                 rec[f"peak_db[{n}]"] = r.get("peak_db", {}).get(n, "")
             rec["run_s"] = r["run_s"]
             rec["reason"] = r["reason"]
