@@ -13,7 +13,7 @@ and a point that is invalid or diverges scores PENALTY_DB.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.optimize import minimize
@@ -177,7 +177,7 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
 
         def objective(u):
             if len(path) >= budget or stopped:
-                raise _BudgetSpent
+                raise _StopSearch
             row = measure_points([to_point(u)], "refine")[0]
             return _score_of(row, score) if row is not None else PENALTY_DB
 
@@ -187,7 +187,7 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
             minimize(objective, u0, method="Nelder-Mead", bounds=[(0.0, 1.0)] * len(bounds),
                      options={"initial_simplex": np.array(simplex), "maxfev": 10 * budget,
                               "xatol": 1e-3, "fatol": 0.05})
-        except _BudgetSpent:
+        except _StopSearch:
             pass
     finally:
         if own:
@@ -197,8 +197,8 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
                       scenario=apply_point(s, best_row["point"]), runs=len(path), path=path)
 
 
-class _BudgetSpent(Exception):
-    pass
+class _StopSearch(Exception):
+    """The run budget is spent, or the caller's progress callback asked to stop."""
 
 
 def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), budget: int = 30,
@@ -229,7 +229,7 @@ def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), bud
                                       start=last_point)
             last_point = tried[cells].point
             if progress is not None and progress(cells, tried[cells]) is False:
-                raise _BudgetSpent
+                raise _StopSearch
         return tried[cells]
 
     passing = lambda cells: tuned(cells).value <= target_db
@@ -250,7 +250,7 @@ def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), bud
                 found = mid
             else:
                 fail = mid
-    except _BudgetSpent:
+    except _StopSearch:
         pass
     finally:
         if own:
