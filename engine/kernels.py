@@ -359,3 +359,139 @@ def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slab
             k = (n + 1) // frame_every - 1
             if k < frames.shape[0]:
                 frames[k] = P[frame_i0:frame_i0 + frames.shape[1], frame_j0:frame_j0 + frames.shape[2]]
+
+
+# --- the reflection-free reference on its light-cone window -------------------
+#
+# The reference grid has walls far away and no layer, and only two kinds of
+# cell matter at step k: those the source can have reached (the rest are
+# still exactly zero) and those from which the interior can still be reached
+# before the run ends (the rest never influence what is recorded).  Both are
+# L1 balls around a box, since the leapfrog update moves information by one
+# node per step along one axis.  Updating only their intersection, with the
+# same arithmetic per cell, gives the interior bitwise the same values.
+
+@njit(**_ROW)
+def axis_gap(v, lo, hi):
+    """Distance of index v from the range lo..hi (0 inside it)."""
+    if v < lo:
+        return lo - v
+    if v > hi:
+        return v - hi
+    return 0
+
+
+@njit(**_ROW)
+def cone_span(i, reach_source, reach_target, source_box, target_box, n_cols):
+    """Columns j0..j1-1 of row i inside both L1 balls: within reach_source of
+    source_box and within reach_target of target_box (boxes: i_lo, i_hi, j_lo, j_hi)."""
+    rs = reach_source - axis_gap(i, source_box[0], source_box[1])
+    rt = reach_target - axis_gap(i, target_box[0], target_box[1])
+    if rs < 0 or rt < 0:
+        return 0, 0
+    j0 = max(source_box[2] - rs, target_box[2] - rt, 0)
+    j1 = min(source_box[3] + rs, target_box[3] + rt, n_cols - 1) + 1
+    return j0, max(j0, j1)
+
+
+@njit(**_ROW)
+def secondary_span(P, S1, S2, i, j0, j1, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
+    """secondary_row on columns j0..j1-1 only.  The loops run over views from
+    index 0: a loop from a variable start would get negative-index checks
+    and lose its vectorisation."""
+    nxp, nyp = P.shape
+    n1 = min(j1, nyp - 1) - j0
+    p0 = P[i, j0:]
+    s1 = S1[i, j0:]
+    gy = gyh[j0:]
+    if homog:
+        for j in range(n1):
+            s1[j] = ca * s1[j] - cb * ((p0[j + 1] - p0[j]) * gy[j])
+    else:
+        a1 = ca1[i, j0:]
+        b1 = cb1[i, j0:]
+        for j in range(n1):
+            s1[j] = a1[j] * s1[j] - b1[j] * ((p0[j + 1] - p0[j]) * gy[j])
+    if i < nxp - 1:
+        p1 = P[i + 1, j0:]
+        s2 = S2[i, j0:]
+        g = gxh[i]
+        if homog:
+            for j in range(j1 - j0):
+                s2[j] = ca * s2[j] + cb * ((p1[j] - p0[j]) * g)
+        else:
+            a2 = ca2[i, j0:]
+            b2 = cb2[i, j0:]
+            for j in range(j1 - j0):
+                s2[j] = a2[j] * s2[j] + b2[j] * ((p1[j] - p0[j]) * g)
+
+
+@njit(**_ROW)
+def primary_span(P, S1, S2, i, j0, j1, homog, ca, cb, ca_arr, cb_arr, gxn, gyn):
+    """primary_row on the inner columns among j0..j1-1 only (loops over views, as above)."""
+    nyp = P.shape[1]
+    lo = max(j0, 1)
+    n = min(j1, nyp - 1) - lo
+    g = gxn[i]
+    p = P[i, lo:]
+    s1 = S1[i, lo:]
+    s1m = S1[i, lo - 1:]
+    s2 = S2[i, lo:]
+    s2m = S2[i - 1, lo:]
+    gy = gyn[lo:]
+    if homog:
+        for j in range(n):
+            p[j] = ca * p[j] + cb * ((s2[j] - s2m[j]) * g - (s1[j] - s1m[j]) * gy[j])
+    else:
+        a = ca_arr[i, lo:]
+        b = cb_arr[i, lo:]
+        for j in range(n):
+            p[j] = a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - (s1[j] - s1m[j]) * gy[j])
+
+
+@njit(**_SWEEP)
+def cone_rows(P, S1, S2, sc, pc, gxn, gxh, gyn, gyh, reach_source, reach_target, source_box, target_box,
+              first, last, defer_first):
+    """Rows first..last-1 of one step of a layer-free grid, each on its cone span
+    (see sweep_rows for the order and defer_first)."""
+    nxp, nyp = P.shape
+    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = sc
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
+    for i in range(first, last):
+        j0, j1 = cone_span(i, reach_source, reach_target, source_box, target_box, nyp)
+        if j0 < j1:
+            secondary_span(P, S1, S2, i, j0, j1, s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
+            if 1 <= i < nxp - 1 and not (defer_first and i == first):
+                primary_span(P, S1, S2, i, j0, j1, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+
+
+@njit(**_SERIAL)
+def cone_finish(n, P, S1, S2, pc, x_slabs, y_slabs, gxn, gyn, reach_source, reach_target, source_box,
+                target_box, deferred, periodic_x, periodic_y, src_i, src_j, src_coef, wave,
+                probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0):
+    """The rest of step n after cone_rows: the deferred first rows of later chunks,
+    periodic seams, source, ghosts, probes and frames (as in advance)."""
+    nxp, nyp = P.shape
+    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
+    for k in range(deferred.size):
+        i = deferred[k]
+        if 1 <= i < nxp - 1:
+            j0, j1 = cone_span(i, reach_source, reach_target, source_box, target_box, nyp)
+            primary_span(P, S1, S2, i, j0, j1, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+    if periodic_x or periodic_y:
+        primary_seams(P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y)
+    add_source(P, src_i, src_j, src_coef, wave[n])
+    copy_ghosts(P, periodic_x, periodic_y)
+    record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
+
+
+@njit(**_ROW)
+def record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0):
+    """Probe values after step n into probe_out[n + 1]; a frame every frame_every steps."""
+    for m in range(probe_i.size):
+        probe_out[n + 1, m] = P[probe_i[m], probe_j[m]]
+    if frame_every > 0 and (n + 1) % frame_every == 0:
+        k = (n + 1) // frame_every - 1
+        if k < frames.shape[0]:
+            frames[k] = P[frame_i0:frame_i0 + frames.shape[1], frame_j0:frame_j0 + frames.shape[2]]
+

@@ -6,8 +6,12 @@
   the page shows except the 20,000-step late-time check (which the page runs
   on request), median of 20;
 - cold: the reference computed from nothing (no memory, no disk cache), median
-  of 5; and the late-time check once, for the record.
-Last line: measure_warm_s=<median> reference_cold_s=<median>
+  of 5; and the late-time check once, for the record;
+- the reference at 2400 steps (cost grows with the cube of the run length):
+  stepped on its light-cone window and on the whole reference grid, three
+  interleaved repeats, medians.
+Last lines: measure_warm_s=<median> reference_cold_s=<median>, then
+reference_2400_s=<light cone> reference_2400_full_s=<whole grid> speedup=<ratio>
 """
 
 from __future__ import annotations
@@ -46,6 +50,16 @@ def main() -> None:
     print(f"  cold reference  median {statistics.median(cold):.4f} s  (min {min(cold):.4f}, max {max(cold):.4f})")
     print(f"  late-time check {late.steps} steps: {late_s:.3f} s, {late.status}")
     print(f"measure_warm_s={statistics.median(warm):.4f} reference_cold_s={statistics.median(cold):.4f}")
+    long = default_scenario(steps=2400)
+    cone, full = [], []
+    for _ in range(3):
+        for light_cone, times in ((True, cone), (False, full)):
+            t = time.perf_counter()
+            compute_reference(long, light_cone=light_cone)
+            times.append(time.perf_counter() - t)
+            print(f"  reference 2400 steps, {'light cone' if light_cone else 'whole grid'}: {times[-1]:.2f} s")
+    c, f = statistics.median(cone), statistics.median(full)
+    print(f"reference_2400_s={c:.2f} reference_2400_full_s={f:.2f} speedup={f / c:.2f}")
 
 
 if __name__ == "__main__":
