@@ -6,15 +6,14 @@ from __future__ import annotations
 import html
 import io
 
-import holoviews as hv
 import panel as pn
 from bokeh.resources import INLINE
 
 from quietlayer.engine.layer import resolved_sigma_max, side_cell
 
-from . import CAUTION, plots
+from . import CAUTION
+from .figures import LiveFigures, best_frame, finite_or_dash
 from .units import format_frequency, format_length
-
 
 
 def _parameters(m) -> str:
@@ -42,10 +41,10 @@ def _scores(m, late) -> str:
     lines = ["| probe | peak error (dB) | incidence (deg) |", "|---|---|---|"]
     for name, value in m.peak_db.items():
         angle = m.probe_angles.get(name)
-        lines.append(f"| {html.escape(name)} | {plots.finite_or_dash(value)} | "
+        lines.append(f"| {html.escape(name)} | {finite_or_dash(value)} | "
                      f"{'' if angle is None else f'{angle:.0f}'} |")
-    lines.append(f"\n**Worst peak error {plots.finite_or_dash(m.worst_peak_db)} dB** (probe {html.escape(m.worst_probe)}); "
-                 f"global error {plots.finite_or_dash(m.global_db)} dB.")
+    lines.append(f"\n**Worst peak error {finite_or_dash(m.worst_peak_db)} dB** (probe {html.escape(m.worst_probe)}); "
+                 f"global error {finite_or_dash(m.global_db)} dB.")
     if late is not None:
         lines.append(f"\nLate-time check over {late.steps} steps: **{late.status}**, {html.escape(late.message)}.")
     return "\n".join(lines)
@@ -55,18 +54,21 @@ def report_html(m, late=None) -> str:
     """The report as one HTML document (text)."""
     if m is None:
         raise ValueError("nothing measured yet")
-    if "bokeh" not in hv.Store.renderers:
-        hv.extension("bokeh", logo=False)  # called outside the page (the command line)
-    figures = plots.report_figures(m)
+    live = LiveFigures()
+    live.show(m, None, best_frame(m))
+    fig = live.figures
+    for key in ("spectrum", "angle", "error"):
+        fig[key].title.text = fig[key].title.text.replace(", dotted: A)", ")").replace(" (dotted: A)", "")
+    fixed = dict(sizing_mode="fixed")
     body = pn.Column(
         pn.pane.Markdown(f"# Quietlayer report — {html.escape(m.scenario.title or 'custom scenario')}"),
         pn.pane.Markdown(f"> **Caution.** {CAUTION}"),
         pn.pane.Markdown("## Parameters\n" + _parameters(m)),
         pn.pane.Markdown("## Scores\n" + _scores(m, late)),
         pn.pane.Markdown("## Figures"),
-        pn.Row(*(pn.pane.HoloViews(f, width=520, height=380) for f in figures[:2])),
-        *(pn.pane.HoloViews(f, width=900, height=330) for f in figures[2:5]),
-        pn.Row(*(pn.pane.HoloViews(f, width=300, height=260) for f in figures[5:])),
+        pn.Row(pn.pane.Bokeh(fig["total"], **fixed), pn.pane.Bokeh(fig["reflected"], **fixed)),
+        *(pn.pane.Bokeh(fig[key], width=900) for key in ("spectrum", "angle", "error")),
+        pn.Row(*(pn.pane.Bokeh(fig[f"profile{k}"], width=300) for k in range(3)), width=940),
         pn.pane.Markdown(f"*{CAUTION}*"),
         width=1000,
     )

@@ -35,3 +35,8 @@ def format_length(metres: float) -> str:
 def format_frequency(hertz: float) -> str:
     scale, name = _pick(_FREQ, abs(hertz) * 1.0000001)
     return f"{hertz / scale:g} {name}"
+
+
+def snap(value: float, step: float) -> float:
+    """`value` on a control's grid of `step`, as a clean decimal (0.35, not 0.35000000000000003)."""
+    return float(f"{round(value / step) * step:.12g}")

@@ -88,7 +88,7 @@ import holoviews as hv
 import numpy as np
 
 from quietlayer.app import plots
-from quietlayer.app.page import SWEEP_CHOICES, sweep_axis
+from quietlayer.app.sweep_view import SWEEP_CHOICES, sweep_axis
 from quietlayer.engine.sweep import Axis, SweepTable, apply_point, grid_points
 
 SWEEP_WAIT_S = 120.0  # a 3 x 3 sweep takes about a second; slack for a loaded machine
