@@ -32,6 +32,7 @@ FIELD_FLOOR_DB = -80.0
 REFLECTED_FLOOR_DB = -140.0
 GROUPS = (("normal", 0.0), ("oblique", 45.0), ("grazing", 80.0))
 KEYS = ("total", "reflected", "spectrum", "angle", "error", "profile0", "profile1", "profile2")
+SHOW_ORDER = ("total", "reflected", "angle", "error", "profile0", "spectrum")  # the spectrum's data leaves last
 CURVE_HEIGHT = 270
 PROFILE_HEIGHT = 230
 IMAGE_HEIGHT = 340
@@ -146,6 +147,7 @@ class LiveFigures:
         self.measurement: Measurement | None = None
         self.frame = 0
         self._image_peak = 1.0
+        self._peak_of = None
         self.figures = {}
         self._make_images()
         self._make_curves()
@@ -227,7 +229,7 @@ class LiveFigures:
         self.measurement = m
         if frame is not None:
             self.frame = frame
-        for key in keys:
+        for key in (k for k in SHOW_ORDER if k in keys):
             if key in ("total", "reflected"):
                 self._show_image(key)
             elif key == "spectrum":
@@ -292,7 +294,10 @@ class LiveFigures:
         s = m.scenario
         k = int(np.clip(self.frame, 0, m.frame_steps.size - 1))
         ox, oy = s.offset
-        peak = float(np.abs(m.total_frames[:, ox:ox + s.nx + 1, oy:oy + s.ny + 1]).max()) or 1.0
+        if self._peak_of is not m:  # the largest field in the interior over the whole run: the 0 dB
+            self._peak_of = m
+            self._image_peak = float(np.abs(m.total_frames[:, ox:ox + s.nx + 1, oy:oy + s.ny + 1]).max()) or 1.0
+        peak = self._image_peak
         frames = m.reflected_frames if reflected else m.total_frames
         data = to_db(frames[k] / peak, REFLECTED_FLOOR_DB if reflected else FIELD_FLOOR_DB)
         (x0, y0, x1, y1), scale, unit = self._image_geometry(m, reflected)

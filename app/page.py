@@ -14,7 +14,9 @@ from __future__ import annotations
 import io
 import math
 import threading
+import time
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import nullcontext
 from dataclasses import replace
 from functools import partial
 
@@ -37,6 +39,11 @@ from .sweep_view import SweepView
 from .units import format_frequency, format_length, snap
 
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
+DRAG_PARTS = frozenset({"probes", "spectra"})  # while a slider is dragged: headline and spectrum only
+HEADLINE_LEAD_MS = 40  # the headline's message leaves and is drawn before the figures' data follows
+DRAG_COALESCE_MS = 25  # a key press sends value and value_throttled together: only the full run is made
+LATE_CHECK_REST_S = 0.8  # the late-time check starts once the controls have rested this long: while the
+                         # user tunes, both cores stay free for the runs they are waiting for
 SIDE_NAMES = ["left", "right", "bottom", "top"]
 SOURCE_GAP = 12  # cells between the source and the right face in the bench layout
 
@@ -87,6 +94,9 @@ class QuietlayerPage:
         self.result = None
         self.pinned = None
         self.generation = 0
+        self.want_full = True  # what the newest request asks for (see request)
+        self._drag_token = 0  # bumped by each slider move; a pending mid-drag run checks it
+        self.complete = True  # the result on show has every figure (not a mid-drag one)
         self.running = False
         self.last_good: Scenario | None = None
         self.fontscale = 1.0
@@ -275,9 +285,10 @@ class QuietlayerPage:
 
     # --- events ---------------------------------------------------------------
     def _watch(self):
-        live = [self.w_cells, self.w_order, self.w_ratio, self.w_kappa, self.w_alpha, self.w_alpha_order,
-                self.w_courant]
-        for widget in live:
+        layer = [self.w_cells, self.w_order, self.w_ratio, self.w_kappa, self.w_alpha, self.w_alpha_order]
+        for widget in layer:  # the headline and spectrum follow a drag; the full set comes on release
+            widget.param.watch(self._dragged, "value")
+        for widget in layer + [self.w_courant]:  # a new Courant number needs a new reference: on release
             widget.param.watch(self._changed, "value_throttled")
         for widget in (self.w_sides, self.w_cell, self.w_eps, self.w_sigma_host, self.w_pol, self.w_fmin,
                        self.w_fmax, self.w_precision, self.w_nx, self.w_ny, self.w_steps):
@@ -293,11 +304,24 @@ class QuietlayerPage:
 
     def _frame_changed(self, event):
         if not self._placing_player:
-            self.figures.show_frame(event.new)
+            with self._batched():
+                self.figures.show_frame(event.new)
 
     def _changed(self, *_):
         if not self._suspend:
             self.request()
+
+    def _dragged(self, *_):
+        """A slider moves: ask for the headline and spectrum, unless the release (or a
+        key press, which sends both at once) asks for everything straight after."""
+        if self._suspend:
+            return
+        self._drag_token += 1
+        self._call_soon(self._drag_request, self._drag_token, delay_ms=DRAG_COALESCE_MS)
+
+    def _drag_request(self, token: int):
+        if token == self._drag_token:
+            self.request(full=False)
 
     def _preset_changed(self, event):
         self.base = load_preset(event.new)
@@ -384,10 +408,15 @@ class QuietlayerPage:
         else:
             function(*args)
 
-    def request(self):
-        """Ask for a run with the current controls; bursts are coalesced."""
+    def request(self, full: bool = True):
+        """Ask for a run with the current controls; bursts are coalesced, and the
+        newest request says whether every figure (full) or only the headline and
+        the spectrum (a slider being dragged) is wanted."""
+        if full:
+            self._drag_token += 1  # a pending mid-drag request is overtaken
         with self._lock:
             self.generation += 1
+            self.want_full = full
         try:
             s = self.scenario_from_controls()
         except ScenarioError as exc:
@@ -416,10 +445,11 @@ class QuietlayerPage:
     def _work(self):
         """Worker thread: measure the newest setting until no newer one is waiting."""
         while True:
-            generation = self.generation
+            with self._lock:
+                generation, full = self.generation, self.want_full
             try:
                 s = self.scenario_from_controls()
-                result = measure(s, parts=PAGE_PARTS)
+                result = measure(s, parts=PAGE_PARTS if full else DRAG_PARTS)
             except ScenarioError as exc:
                 self._call_soon(self._show_error, str(exc))
                 result = None
@@ -430,28 +460,45 @@ class QuietlayerPage:
                 if generation == self.generation:
                     self.running = False
                     if result is not None:
-                        self._call_soon(self._deliver, result, s, generation)
+                        self._call_soon(self._deliver, result, s, generation, full)
                     else:
                         self._call_soon(setattr, self.spinner, "value", False)
                     return
             # newer parameters arrived while this ran: run those instead
 
-    def _deliver(self, result, s: Scenario, generation: int):
-        """Event loop: show a fresh result, the headline first (it leaves in this
-        turn's message), the figures in the next turn."""
+    def _batched(self):
+        """Changes made inside leave as one message: Bokeh would otherwise send one per
+        changed property, and serialise each against every model of the page."""
+        return pn.io.hold(self.doc) if self.doc is not None else nullcontext()
+
+    def _deliver(self, result, s: Scenario, generation: int, full: bool = True):
+        """Event loop: show a fresh result, the headline first (its message leaves
+        at the end of this turn), the figures a moment later."""
         if generation != self.generation:
             return
+        with self._batched():
+            self._deliver_now(result, s, generation, full)
+
+    def _deliver_now(self, result, s: Scenario, generation: int, full: bool):
         self.result = result
         self.last_good = s
         self.spinner.value = self.running
         self.late = None
+        self.complete = full
         self._show_headline()
-        self._start_late_check(s, generation)
-        self._call_soon(self._show_figures, generation)
+        if full:
+            self._start_late_check(s, generation)
+            self._call_soon(self._show_figures, generation, delay_ms=HEADLINE_LEAD_MS)
+        else:
+            self.figures.show(result, self.pinned, keys=("spectrum",))
 
     def _show_figures(self, generation: int):
         if generation != self.generation:
             return  # a newer setting is on its way
+        with self._batched():
+            self._show_figures_now()
+
+    def _show_figures_now(self):
         m = self.result
         frames = m.frame_steps.size if m.frame_steps is not None else 0
         first = self.figures.measurement is None
@@ -471,6 +518,9 @@ class QuietlayerPage:
             return generation == self.generation
 
         def work():
+            time.sleep(LATE_CHECK_REST_S)  # the controls must rest first
+            if not still_wanted(0, 0):
+                return
             try:
                 late = late_time_check(s, progress=still_wanted)
             except RunCancelled:
@@ -495,7 +545,8 @@ class QuietlayerPage:
         s = m.scenario
         late = getattr(self, "late", None)
         if late is None:
-            late_value, late_sub = "checking…", "20,000 steps in the background"
+            late_value, late_sub = ("checking…", "20,000 steps in the background") if self.complete else \
+                ("…", "after the slider is released")
         else:
             late_value = late.status
             late_sub = (f"{late.growth_db_per_1000:+.1f} dB / 1000 steps" if late.status != "diverged"

@@ -201,7 +201,15 @@ class ReferenceCache:
             self._memory.clear()
 
 
-DEFAULT_CACHE = ReferenceCache()
+def _default_cache() -> ReferenceCache:
+    """The process's cache; QUIETLAYER_REFERENCE_CACHE=off keeps no reference at all
+    (every run computes its own: for timing the reference itself)."""
+    if os.environ.get("QUIETLAYER_REFERENCE_CACHE", "").strip().lower() in ("off", "0", "no"):
+        return ReferenceCache(entries=0, use_disk=False)
+    return ReferenceCache()
+
+
+DEFAULT_CACHE = _default_cache()
 
 
 def reference(s: Scenario, cache: ReferenceCache | None = None) -> Reference:
