@@ -30,6 +30,7 @@ pn.extension(notifications=False)
 from quietlayer.assets import preset_names, preset_path
 from quietlayer.engine import (Boundary, Profile, RunCancelled, Scenario, ScenarioError, Side,
                                parse_frequency, parse_length, sigma_opt)
+from quietlayer.engine import backend
 from quietlayer.engine.defaults import angle_probes
 from quietlayer.engine.measure import measure, late_time_check
 
@@ -41,6 +42,7 @@ from .units import format_frequency, format_length, snap
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
 DRAG_PARTS = frozenset({"probes", "spectra"})  # while a slider is dragged: headline and spectrum only
 HEADLINE_LEAD_MS = 40  # the headline's message leaves and is drawn before the figures' data follows
+DRAG_SETTLE_MS = 400  # a mid-drag result with nothing newer after this long gets its full run
 DRAG_COALESCE_MS = 25  # a key press sends value and value_throttled together: only the full run is made
 LATE_CHECK_REST_S = 0.8  # the late-time check starts once the controls have rested this long: while the
                          # user tunes, both cores stay free for the runs they are waiting for
@@ -156,6 +158,7 @@ class QuietlayerPage:
                                        label="Report (HTML)", button_type="light", embed=False)
         self.message = pn.pane.Alert("", alert_type="danger", visible=False, sizing_mode="stretch_width")
         self.status = pn.pane.Markdown("", margin=(0, 10))
+        self.engine_note = pn.pane.Alert("", alert_type="info", visible=False, sizing_mode="stretch_width")
         self.spinner = pn.indicators.LoadingSpinner(value=False, size=26)
         self.headline = pn.pane.HTML("", sizing_mode="stretch_width", stylesheets=[STYLE])
 
@@ -279,7 +282,7 @@ class QuietlayerPage:
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(fields, curves, profile_row, sizing_mode="stretch_width")),
                             ("Sweep", self.sweep.panel), dynamic=False, sizing_mode="stretch_width")
-        self.main = pn.Column(top, self.message, self.headline, self.status, self.tabs, caution,
+        self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, self.tabs, caution,
                               sizing_mode="stretch_width", stylesheets=[STYLE])
         self.root = pn.Row(self.controls, self.main, sizing_mode="stretch_width")
 
@@ -491,6 +494,12 @@ class QuietlayerPage:
             self._call_soon(self._show_figures, generation, delay_ms=HEADLINE_LEAD_MS)
         else:
             self.figures.show(result, self.pinned, keys=("spectrum",))
+            # no release seen (a value set from a link, a lost mouse-up): complete it anyway
+            self._call_soon(self._complete_after_drag, generation, delay_ms=DRAG_SETTLE_MS)
+
+    def _complete_after_drag(self, generation: int):
+        if generation == self.generation and not self.complete:
+            self.request()
 
     def _show_figures(self, generation: int):
         if generation != self.generation:
@@ -519,6 +528,8 @@ class QuietlayerPage:
 
         def work():
             time.sleep(LATE_CHECK_REST_S)  # the controls must rest first
+            while not backend.compiled() and still_wanted(0, 0):  # 20,000 steps want the compiled engine
+                time.sleep(0.25)
             if not still_wanted(0, 0):
                 return
             try:
@@ -536,6 +547,26 @@ class QuietlayerPage:
         if generation == self.generation:
             self.late = late
             self._show_headline()
+
+    def show_engine_state(self) -> bool:
+        """The note above the headline while the engine is compiled for this machine;
+        False once the compiled engine is in use (the periodic call then stops)."""
+        status = backend.compile_status()
+        if status is None:
+            if self.engine_note.visible:
+                self.engine_note.visible = False
+                if self.result is not None and self.result.engine != "compiled":
+                    self.request()  # the same setting again, now at full speed
+            return False
+        left = max(0.0, status.expected_s - status.elapsed_s)
+        self.engine_note.object = (
+            f"**First start on this machine:** the engine is being compiled for it ({status.what}, stage "
+            f"{status.stage + 1} of {status.stages}, {status.elapsed_s:.0f} s so far, usually about "
+            f"{left:.0f} s more). Meanwhile every result comes from a slower NumPy version of the same loops: "
+            "the same numbers, each change just takes a few seconds."
+            + (f" ({status.failed}; compiling here instead.)" if status.failed else ""))
+        self.engine_note.visible = True
+        return True
 
     def _show_headline(self):
         m = self.result
@@ -561,7 +592,8 @@ class QuietlayerPage:
             _card("global error", f"{finite_or_dash(m.global_db)} dB", "interior, whole run", "global"),
             _card("late-time check", late_value, late_sub, "late"),
             _card("run time", f"{(m.test_s + m.reference_s) * 1e3:.0f} ms",
-                  "reference cached" if m.reference_cached else "reference computed", "runtime"),
+                  ("NumPy loops: first start" if m.engine != "compiled" else
+                   "reference cached" if m.reference_cached else "reference computed"), "runtime"),
             _card("cells per wavelength", f"{s.cells_per_wavelength:.1f}", f"at f_max = {format_frequency(s.source.f_max)}",
                   "cpw"),
             delta,
@@ -615,5 +647,10 @@ def create_page(preset: str = "demo"):
         finally:
             page._suspend = False
     pn.state.onload(page.request)
+    if page.show_engine_state():  # first start: say what the page waits for, until the engine is compiled
+        def tick():
+            if not page.show_engine_state():
+                callback.stop()
+        callback = pn.state.add_periodic_callback(tick, period=1000)
     pn.state.on_session_destroyed(lambda ctx: page.close())
     return page.view()

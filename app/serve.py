@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import socket
 import sys
-import threading
 import time
 
 
@@ -32,23 +31,29 @@ def warm_up(preset: str) -> float:
 
 
 def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, preset: str = "demo") -> int:
-    import panel as pn
     from quietlayer.assets import preset_names
-
-    from .page import create_page
+    from quietlayer.engine import backend
 
     if preset not in preset_names():
         print(f"quietlayer: --preset {preset!r} is not allowed: one of {', '.join(preset_names())}", file=sys.stderr)
         return 2
-    print("quietlayer: preparing the engine in the background (the first start compiles it, about a "
-          "minute; later starts load it in about a second)...", flush=True)
+    started = time.perf_counter()
 
-    def prepare():
+    def load():
         seconds = warm_up(preset)
-        print(f"quietlayer: engine ready in {seconds:.1f} s", flush=True)
+        print(f"quietlayer: compiled engine in use after {time.perf_counter() - started:.1f} s "
+              f"(its last load took {seconds:.1f} s)", flush=True)
 
-    # the server listens meanwhile; a page that arrives early waits for the same compiled code
-    threading.Thread(target=prepare, name="ql-warm-up", daemon=True).start()
+    # first, so the compiling process starts while the page's libraries load; the server then
+    # listens at once, and until the compiled kernels are loaded runs use their NumPy twin
+    print("quietlayer: loading the compiled engine in the background (on a first start it is compiled "
+          "for this machine, about half a minute; the page answers meanwhile)...", flush=True)
+    backend.compile_in_background(load)
+
+    import panel as pn
+
+    from .page import create_page
+
     if port == 0:
         with socket.socket() as probe:
             probe.bind((address, 0))

@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.special import hankel2
 
-from . import kernels
+from . import backend
 from .errors import DivergenceError
 from .grid import build_grid
 from .reference import DEFAULT_CACHE, ReferenceCache, frame_every
@@ -98,6 +98,7 @@ class Measurement:
     reference_s: float = 0.0
     reference_cached: bool = False
     elapsed_s: float = 0.0
+    engine: str = "compiled"  # "numpy" while the kernels were still being compiled (backend.py)
 
 
 def _with_layer(s: Scenario, layer) -> Scenario:
@@ -183,7 +184,7 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads, grid=grid,
                    snapshot_window=window)
     m = Measurement(scenario=s, times=run.times, test_s=run.elapsed_s,
-                    reference_s=0.0 if cached else ref.elapsed_s, reference_cached=cached)
+                    reference_s=0.0 if cached else ref.elapsed_s, reference_cached=cached, engine=run.engine)
 
     # per-probe scores
     errors = {}
@@ -202,7 +203,7 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     if want_frames:
         test_inside = run.snapshots if window is not None else run.snapshots[(slice(None),) + grid.interior_slice()]
         if "global" in parts:
-            err, total = kernels.squared_error_sums(np.ascontiguousarray(test_inside).reshape(-1),
+            err, total = backend.loops().squared_error_sums(np.ascontiguousarray(test_inside).reshape(-1),
                                                     ref.frames.reshape(-1))
             if total > 0:
                 m.global_db = float(10 * np.log10(max(err / total, 10 ** (FLOOR_DB / 10))))

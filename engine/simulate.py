@@ -11,7 +11,7 @@ from typing import Callable
 import numba
 import numpy as np
 
-from . import kernels
+from . import backend
 from .errors import DivergenceError, RunCancelled
 from .grid import YeeGrid, build_grid
 from .scenario import Scenario
@@ -47,6 +47,7 @@ class RunResult:
     threads: int
     fields: dict[str, np.ndarray] = field(default_factory=dict)
     state: tuple = ()  # (P, S1, S2) as the kernels hold them, when keep_fields
+    engine: str = "compiled"  # or "numpy": the NumPy twin stepped it (see backend.py)
 
     @property
     def mcells_per_s(self) -> float:
@@ -65,9 +66,10 @@ def row_chunks(rows: int, threads: int) -> np.ndarray:
     return np.linspace(0, rows, max(1, threads) + 1).round().astype(np.int64)
 
 
-def field_energy(grid: YeeGrid, P, S1, S2, window: tuple[slice, slice] | None = None) -> float:
+def field_energy(grid: YeeGrid, P, S1, S2, window: tuple[slice, slice] | None = None, loops=None) -> float:
     """Electromagnetic energy per unit length, J/m: (1/2) sum(eps E^2 + mu0 H^2) dx dy,
     over the whole grid or over the nodes of `window` (and the S1/S2 between them)."""
+    kernels = loops or backend.loops()
     nx, ny = grid.cells
     if window is None:
         ux = nx if grid.periodic_x else nx + 1  # skip ghost copies on periodic axes
@@ -101,7 +103,11 @@ class ConeStepper:
     `target_box` can still be reached before step `total` (kernels.cone_rows);
     row chunks on a small thread pool, one barrier per step."""
 
-    def __init__(self, g: YeeGrid, kernel_args: tuple, target_box: np.ndarray, total: int, threads: int):
+    def __init__(self, g: YeeGrid, kernel_args: tuple, target_box: np.ndarray, total: int, threads: int,
+                 loops=None):
+        self.loops = loops or backend.loops()
+        if self.loops is not backend.kernels:
+            threads = 1  # the NumPy loops step the cone in one piece
         if any(slab[1].size for slab in g.x_slabs[:4] + g.y_slabs[:4]):
             raise ValueError("the light-cone window is for grids without a layer")
         (self.P, self.S1, self.S2, self.sc, self.pc, self.x_slabs, self.y_slabs, _, self.px, self.py,
@@ -137,15 +143,15 @@ class ConeStepper:
                 else np.array([lo, hi], dtype=np.int64)
             args = (self.P, self.S1, self.S2, self.sc, self.pc, gxn, gxh, gyn, gyh) + cone
             if starts.size > 2:
-                jobs = [self.pool.submit(kernels.cone_rows, *args, starts[c], starts[c + 1], c > 0)
+                jobs = [self.pool.submit(self.loops.cone_rows, *args, starts[c], starts[c + 1], c > 0)
                         for c in range(starts.size - 1)]
                 for job in jobs:
                     job.result()
                 deferred = starts[1:-1]
             else:
-                kernels.cone_rows(*args, starts[0], starts[1], False)
+                self.loops.cone_rows(*args, starts[0], starts[1], False)
                 deferred = no_rows
-            kernels.cone_finish(n, self.P, self.S1, self.S2, self.pc, self.x_slabs, self.y_slabs, gxn, gyn,
+            self.loops.cone_finish(n, self.P, self.S1, self.S2, self.pc, self.x_slabs, self.y_slabs, gxn, gyn,
                                 *cone, deferred, self.px, self.py, *self.record_args)
 
     def close(self) -> None:
@@ -180,6 +186,7 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     """
     g = grid if grid is not None else build_grid(scenario)
     s = scenario
+    kernels = backend.loops()  # compiled, or their NumPy twin while they are being compiled
     n_threads = threads if threads is not None else default_threads(g)
     P, S1, S2 = g.new_fields()
     for a in (P, S1, S2):
@@ -213,7 +220,7 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
     if light_cone is not None:
         if initial is not None:
             raise ValueError("a light-cone run starts from rest")
-        advance = ConeStepper(g, kernel_args, np.asarray(light_cone), s.steps, n_threads)
+        advance = ConeStepper(g, kernel_args, np.asarray(light_cone), s.steps, n_threads, kernels)
         # outside the box the fields are stale by design: the guard watches the box
         i_lo, i_hi, j_lo, j_hi = light_cone
         energy_window = (slice(i_lo, i_hi + 1), slice(j_lo, j_hi + 1))
@@ -223,7 +230,7 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
         def advance(first, count):
             kernels.advance(first, count, *kernel_args)
     advance(0, 0)  # compile or load from cache outside the timing
-    field_energy(g, P, S1, S2)
+    field_energy(g, P, S1, S2, loops=kernels)
     numba.set_num_threads(n_threads)  # per calling thread; the kernels' prange obeys it
     t0 = time.perf_counter()
     try:
@@ -232,10 +239,10 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
             advance(step, stop - step)
             step = stop
             if step % check_every == 0 or step == s.steps:
-                energy = field_energy(g, P, S1, S2, energy_window)
+                energy = field_energy(g, P, S1, S2, energy_window, kernels)
                 e_steps.append(step)
                 e_values.append(energy)
-                e_inside.append(field_energy(g, P, S1, S2, interior))
+                e_inside.append(field_energy(g, P, S1, S2, interior, kernels))
                 if not math.isfinite(energy):
                     raise DivergenceError(step, "the fields are no longer finite")
                 if energy > ENERGY_ABSOLUTE_LIMIT:
@@ -269,4 +276,5 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
                      quantity=quantity, snapshot_steps=np.asarray(snap_steps, dtype=int),
                      snapshots=snapshots, energy_steps=np.asarray(e_steps, dtype=int),
                      energy=np.asarray(e_values), interior_energy=np.asarray(e_inside), elapsed_s=elapsed, threads=n_threads, fields=fields,
-                     state=(P, S1, S2) if keep_fields else ())
+                     state=(P, S1, S2) if keep_fields else (),
+                     engine="compiled" if kernels is backend.kernels else "numpy")
