@@ -195,15 +195,15 @@ def cone_finish(n, P, S1, S2, pc, x_slabs, y_slabs, gxn, gyn, reach_source, reac
 
 def sum_squares(A):
     a = A.astype(np.float64)
-    return float(np.vdot(a, a))
+    return float(np.einsum("ij,ij->", a, a))
 
 
 def sum_weighted_squares(A, W):
     a = A.astype(np.float64)
-    return float(np.sum(W * a * a))
+    return float(np.einsum("ij,ij,ij->", W, a, a))
 
 
 def squared_error_sums(test, ref):
     r = ref.astype(np.float64)
     d = test.astype(np.float64) - r
-    return float(np.vdot(d, d)), float(np.vdot(r, r))
+    return float(d @ d), float(r @ r)

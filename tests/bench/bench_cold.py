@@ -13,7 +13,6 @@ Last line: cold_first_headline_s=… compiled_in_use_s=…
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import re
 import sys
@@ -21,17 +20,11 @@ import tempfile
 import time
 from pathlib import Path
 
-
-def _browser_helpers():
-    path = Path(__file__).resolve().parents[1] / "browser" / "conftest.py"
-    spec = importlib.util.spec_from_file_location("quietlayer_browser_helpers", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
+import browser_helpers  # beside this script
 
 
 def main() -> int:
-    helpers = _browser_helpers()
+    helpers = browser_helpers.load()
     problem = helpers.browser_problem()
     if problem:
         print(f"bench_cold: {problem}", file=sys.stderr)
@@ -63,6 +56,7 @@ def main() -> int:
             later = helpers.Dashboard(context.new_page(), url)
             print(f"a page opened after that: first headline in {later.open(settle=False):.2f} s")
             context.close()
+            print("server log:\n  " + server.output(12).replace("\n", "\n  "))
         finally:
             server.stop()
             browser.close()

@@ -23,13 +23,14 @@ Last line: slider_to_update_s=… figures_s=… problem_change_s=… drag_update
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import statistics
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+import browser_helpers  # beside this script
 
 CHANGES = 20
 PROBLEM_CHANGES = 6
@@ -57,15 +58,6 @@ WATCH_JS = """() => {
     if (text !== null && text !== last) { if (last !== null) window.__qlChanges.push(performance.now()); last = text; }
   }, 5);
 }"""
-
-
-def _browser_helpers():
-    # the tests' own server and page helpers, so the bench drives the page exactly as they do
-    path = Path(__file__).resolve().parents[1] / "browser" / "conftest.py"
-    spec = importlib.util.spec_from_file_location("quietlayer_browser_helpers", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def _keys_that_change(dash, before: str) -> int:
@@ -147,7 +139,7 @@ def problem_changes(dash) -> list[float]:
 
 
 def main() -> int:
-    helpers = _browser_helpers()
+    helpers = browser_helpers.load()
     problem = helpers.browser_problem()
     if problem:
         print(f"bench_page: {problem}", file=sys.stderr)
