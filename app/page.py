@@ -589,7 +589,8 @@ class QuietlayerPage:
         cards = [
             _card("worst peak error", f"{finite_or_dash(m.worst_peak_db)} dB", f"at probe “{m.worst_probe}”",
                   "worst"),
-            _card("global error", f"{finite_or_dash(m.global_db)} dB", "interior, whole run", "global"),
+            _card("global error", f"{finite_or_dash(m.global_db)} dB", "interior, whole run", "global")
+            if self.complete else _card("global error", "…", "when the slider is released", "global"),
             _card("late-time check", late_value, late_sub, "late"),
             _card("run time", f"{(m.test_s + m.reference_s) * 1e3:.0f} ms",
                   ("NumPy loops: first start" if m.engine != "compiled" else

@@ -233,3 +233,34 @@ def test_every_problem_field_lies_inside_the_control_column(dashboard):
         if box["x"] < card["x"] or box["x"] + box["width"] > card["x"] + card["width"]:
             outside.append(f"{label} at x = {box['x']:.0f}..{box['x'] + box['width']:.0f}")
     assert not outside, f"beyond the card at x = {card['x']:.0f}..{card['x'] + card['width']:.0f}: {outside}"
+
+
+def test_dragging_a_slider_updates_the_headline_before_release(dashboard):
+    dashboard.open()
+    page = dashboard.page
+    handle = dashboard.slider_handle(ORDER)
+    handle.scroll_into_view_if_needed()
+    box = handle.bounding_box()
+    x, y = box["x"] + box["width"] / 2, box["y"] + box["height"] / 2
+    seen = [dashboard.card("worst")]
+    page.mouse.move(x, y)
+    page.mouse.down()
+    try:
+        for step in range(1, 13):  # to the left, a few pixels at a time, as a hand would
+            page.mouse.move(x - 6 * step, y)
+            page.wait_for_timeout(150)
+            text = dashboard.card("worst")
+            if text is not None and text != seen[-1]:
+                seen.append(text)
+        during = dashboard.card("late")
+    finally:
+        page.mouse.up()
+    assert len(seen) >= 3, f"the headline followed the drag only {len(seen) - 1} times: {seen}"
+    assert all(math.isfinite(parse_db(t)) for t in seen), seen
+    assert during in ("…", "checking…", "stable"), during
+    # on release every figure follows, and the link holds the new value
+    dashboard.settle()
+    released = dashboard.slider_value(ORDER)
+    assert released < 3.0
+    assert float(query(dashboard.href())["m"]) == pytest.approx(released)
+    assert math.isfinite(dashboard.db("global"))
