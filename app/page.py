@@ -460,13 +460,15 @@ class QuietlayerPage:
                 self._call_soon(self._show_error, f"The run failed: {exc}")
                 result = None
             with self._lock:
-                if generation == self.generation:
+                newest = generation == self.generation
+                if newest:
                     self.running = False
-                    if result is not None:
-                        self._call_soon(self._deliver, result, s, generation, full)
-                    else:
-                        self._call_soon(setattr, self.spinner, "value", False)
-                    return
+            if newest:  # outside the lock: without a server the delivery runs right here
+                if result is not None:
+                    self._call_soon(self._deliver, result, s, generation, full)
+                else:
+                    self._call_soon(setattr, self.spinner, "value", False)
+                return
             # newer parameters arrived while this ran: run those instead
 
     def _batched(self):
