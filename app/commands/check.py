@@ -45,7 +45,7 @@ def run(args) -> int:
     from quietlayer.engine.errors import DivergenceError
     from quietlayer.engine.measure import measure
 
-    s = load(args.scenario)
+    s = load(args.scenario, late_steps=0 if args.no_late else args.late_steps)
     if not s.probes:
         raise BadInput(f"{args.scenario}: probes: the scenario has none; check scores the layer at its probes "
                        "(add [[probes]] entries with name, x, y)")

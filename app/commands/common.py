@@ -306,9 +306,17 @@ def problem_line(s) -> str:
 
 # --- shared steps ---------------------------------------------------------------
 
-def load(path: str):
+def load(path: str, late_steps: int = 0):
+    """The scenario in a file, refused when its measurement (with a late-time
+    check of `late_steps`) is beyond the command's work budget; a run far
+    longer than usual is announced before it starts."""
+    from quietlayer.engine.budget import COMMAND_BUDGET, estimate_work, work_note
     from quietlayer.engine.scenario_file import load_scenario
-    return load_scenario(path)
+    s = load_scenario(path, budget=COMMAND_BUDGET, late_steps=late_steps)
+    note = work_note(estimate_work(s, late_steps))
+    if note:
+        console.note(f"quietlayer: note: {note}")
+    return s
 
 
 def output_file(text: str, option: str, refuse=None) -> Path:

@@ -17,9 +17,9 @@ def run(args) -> int:
     path = args.scenario
     from quietlayer.assets import preset_path
     from quietlayer.engine import Scenario
-    from quietlayer.engine.measure import measure
+    from quietlayer.engine.measure import LATE_STEPS, measure
 
-    scenario = load(path) if path else Scenario.from_toml(preset_path("demo").read_text("utf-8"))
+    scenario = load(path, late_steps=LATE_STEPS) if path else Scenario.from_toml(preset_path("demo").read_text("utf-8"))
     result = measure(scenario)
     s = result.scenario
     print(s.title or path)

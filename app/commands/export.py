@@ -32,9 +32,9 @@ def add_parser(commands):
 def run(args) -> int:
     from quietlayer.engine.errors import DivergenceError
     from quietlayer.engine.export import coefficients_csv, coefficients_json, coefficients_npz, write_text_atomic
-    from quietlayer.engine.measure import ALL_PARTS, measure
+    from quietlayer.engine.measure import ALL_PARTS, LATE_STEPS, measure
 
-    s = load(args.scenario)
+    s = load(args.scenario, late_steps=0 if args.no_late else LATE_STEPS)
     folder = Path(args.out).expanduser()
     if folder.exists() and not folder.is_dir():
         raise BadInput(f"--out {args.out}: is a file; give a folder")
