@@ -27,6 +27,11 @@ from .scenario import MAX_GRID_NODES, MAX_INTERIOR_CELLS, MAX_STEPS, Scenario
 # are small beside them).
 FIELD_ARRAYS = 9
 BUILD_BYTES_PER_NODE = 16
+# A node inside a CPML also updates its psi (the recursive convolution): a grid
+# that is mostly layer (four 200-cell layers round an 80 x 200 interior) ran at
+# 76 Mcells/s against ~1000 for an interior, so a layer node counts ten times.
+LAYER_NODE_COST = 10
+PSI_ARRAYS = 4  # psi of both fields and directions, where the layers are
 FRAME_BYTES_TARGET = 2e8  # reference.frame_every keeps a run's interior frames near this
 NOMINAL_RATE = 5e8  # cell updates per second of one measurement on an ordinary 2-core machine (measured ~1e9)
 
@@ -34,7 +39,8 @@ NOMINAL_RATE = 5e8  # cell updates per second of one measurement on an ordinary 
 @dataclass(frozen=True)
 class WorkBudget:
     """The most one measurement may cost: cell updates (test, reference and
-    late-time runs together) and bytes held at once."""
+    late-time runs together; a layer node counts LAYER_NODE_COST) and bytes
+    held at once."""
 
     cell_updates: float
     memory_bytes: float
@@ -96,14 +102,16 @@ class _Sizes:
         ref_ny = self.ny + (0 if self.periodic_y else 2 * margin)
         ref = (ref_nx + 1) * (ref_ny + 1)
         interior = (self.nx + 1) * (self.ny + 1)
+        layer = test - interior
+        test_cost = test + (LAYER_NODE_COST - 1) * layer  # in interior-node updates
         # frames as reference.frame_every takes them: about 100 per run, ~FRAME_BYTES_TARGET in float64;
         # the reference's and the test run's are held together
         frames = min(steps, max(4, min(100, int(FRAME_BYTES_TARGET / (8 * interior))))) + 1
         frame_bytes = 2.0 * frames * interior * self.itemsize
         series = 2.0 * (steps + 1) * self.probes * 8
         per_node = FIELD_ARRAYS * self.itemsize + BUILD_BYTES_PER_NODE
-        memory = per_node * max(ref, test) + frame_bytes + series
-        updates = float(test) * steps + float(ref) * steps + float(test) * late_steps
+        memory = per_node * max(ref, test) + PSI_ARRAYS * self.itemsize * layer + frame_bytes + series
+        updates = float(test_cost) * steps + float(ref) * steps + float(test_cost) * late_steps
         # the reference must itself be a grid the engine takes
         runnable = max(ref_nx, ref_ny) <= MAX_INTERIOR_CELLS and ref <= MAX_GRID_NODES
         return WorkEstimate(test, ref, steps, late_steps, updates, frame_bytes, memory, runnable)

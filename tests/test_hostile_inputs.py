@@ -16,7 +16,8 @@ import pytest
 
 from quietlayer.app.cli import main
 from quietlayer.engine import Scenario, ScenarioError
-from quietlayer.engine.budget import COMMAND_BUDGET, VISITOR_BUDGET, WorkBudget, check_work, estimate_work
+from quietlayer.engine.budget import (COMMAND_BUDGET, LAYER_NODE_COST, VISITOR_BUDGET, WorkBudget, check_work,
+                                     estimate_work)
 from quietlayer.engine.reference import frame_every, reference_scenario
 from quietlayer.engine.scenario import MAX_STEPS, check_toml_limits
 from quietlayer.engine.scenario_file import ScenarioFileError, load_scenario
@@ -175,7 +176,9 @@ def test_estimate_counts_the_grids_the_engine_builds():
         ref, _ = reference_scenario(t)
         assert e.test_nodes == (t.total_cells_x + 1) * (t.total_cells_y + 1)
         assert e.reference_nodes == (ref.total_cells_x + 1) * (ref.total_cells_y + 1)
-        assert e.cell_updates == (e.test_nodes + e.reference_nodes) * steps + e.test_nodes * 1000
+        layer = e.test_nodes - (t.nx + 1) * (t.ny + 1)
+        test_cost = e.test_nodes + (LAYER_NODE_COST - 1) * layer  # psi updates make a layer node dearer
+        assert e.cell_updates == (test_cost + e.reference_nodes) * steps + test_cost * 1000
         frames = steps // frame_every(t) + 1
         assert e.frame_bytes == pytest.approx(2 * frames * (t.nx + 1) * (t.ny + 1) * 4, rel=0.05)
 

@@ -54,7 +54,7 @@ def run(args) -> int:
     try:
         m = measure(s, parts=parts, late_steps=args.late_steps)
     except DivergenceError as exc:
-        return _report_diverged(args, s, str(exc))
+        return _report_diverged(args, s, exc)
     band = m.band_worst_db
     if not math.isfinite(m.worst_peak_db):
         raise BadInput(f"{args.scenario}: probes: none sees the pulse within the run (steps = {s.steps}); "
@@ -117,11 +117,12 @@ def run(args) -> int:
     return EXIT_OK if passed else EXIT_FAILED
 
 
-def _report_diverged(args, s, message: str) -> int:
+def _report_diverged(args, s, exc) -> int:
+    message = str(exc)
     if args.json:
         print(json.dumps({"scenario": str(args.scenario), "title": s.title, "passed": False,
                           "budget_db": args.budget, "reasons": [message], "diverged": message,
-                          "caution": CAUTION}, indent=2))
+                          "diverged_step": exc.step, "caution": CAUTION}, indent=2, allow_nan=False))
     else:
         print(f"{s.title or Path(args.scenario).stem} ({args.scenario})")
         print(f"FAIL: the test run {message}")

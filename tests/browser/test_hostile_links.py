@@ -13,7 +13,7 @@ from urllib.parse import quote
 
 import pytest
 
-from .conftest import Dashboard, log_trouble, new_context
+from .conftest import REPO, Dashboard, log_trouble, new_context
 
 pytestmark = pytest.mark.browser
 
@@ -81,6 +81,9 @@ def test_hostile_links_are_refused_and_others_are_served(browser, logged_server)
                     assert not message, f"{query[:60]}: {message[-300:]}"
                 elif words is not ...:
                     assert words in message, f"{query[:60]}: {message[-300:]}"
+                if query.startswith("nx=600"):  # the budget's refusal, as a visitor sees it
+                    (REPO / "test-artifacts").mkdir(exist_ok=True)
+                    visitor.page.screenshot(path=str(REPO / "test-artifacts" / "hostile-link.png"))
                 assert len(message) < 2_000  # cut, not the 30,000 characters given
                 assert not visitor.page.evaluate(PWNED_JS), f"script text ran: {query[:60]}"
                 assert not refused
