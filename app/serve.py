@@ -57,6 +57,7 @@ def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, prese
     origins = websocket_origins(address, port)
     print(f"quietlayer: open http://{'localhost' if address in ('127.0.0.1', 'localhost') else address}:{port}/ "
           "(Ctrl-C stops)", flush=True)
+
     def new_session():
         ignore_closed_tabs()  # the server's event loop runs by now
         return create_page(preset)

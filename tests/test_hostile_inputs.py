@@ -246,3 +246,16 @@ def test_a_real_process_refuses_hostile_files_without_traceback(tmp_path):
         r = subprocess.run([sys.executable, "-m", "quietlayer.app.cli", "check", "--no-late", str(path)],
                            capture_output=True, text=True, timeout=60)
         assert r.returncode == 2 and "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
+
+
+def test_link_query_is_screened_before_it_is_parsed():
+    from panel.util import parse_query
+
+    from quietlayer.app.visitors import MAX_QUERY_KEYS, MAX_QUERY_VALUE, screened_query
+    hostile = "?nx=" + "9" * 20_000 + "&cell=1%20mm&" + "&".join(f"k{i}=1" for i in range(500))
+    with pytest.raises(ValueError):  # what a session met before: Python's int refuses 20,000 digits
+        parse_query(hostile)
+    parsed = parse_query(screened_query(hostile))
+    assert parsed["cell"] == "1 mm" and len(parsed) == MAX_QUERY_KEYS
+    assert parsed["nx"] == "9" * MAX_QUERY_VALUE + "..."  # no number: the control refuses it by name
+    assert screened_query("") == "" and parse_query(screened_query("?m=3.5")) == {"m": 3.5}
