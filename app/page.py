@@ -31,6 +31,7 @@ from quietlayer.assets import preset_names, preset_path
 from quietlayer.engine import (Boundary, Profile, RunCancelled, Scenario, ScenarioError, Side,
                                parse_frequency, parse_length, sigma_opt)
 from quietlayer.engine import backend
+from quietlayer.engine.budget import VISITOR_BUDGET, check_work
 from quietlayer.engine.defaults import angle_probes
 from quietlayer.engine.measure import measure, late_time_check
 
@@ -198,8 +199,17 @@ class QuietlayerPage:
             self._suspend = False
 
     # --- scenario from the controls ----------------------------------------
+    def _check_control_ranges(self):
+        """A link (or a file) may set a number no control could: refuse it by the control's name."""
+        for widget in self._url_widgets().values():
+            lo, hi, value = getattr(widget, "start", None), getattr(widget, "end", None), widget.value
+            if isinstance(lo, (int, float)) and isinstance(hi, (int, float)) and isinstance(value, (int, float)) \
+                    and not lo <= value <= hi:  # NaN fails too
+                raise ScenarioError(widget.name, value, f"a number from {lo:g} to {hi:g}")
+
     def scenario_from_controls(self) -> Scenario:
         """The scenario the controls describe; ScenarioError names a bad field."""
+        self._check_control_ranges()
         b = self.base
         d = parse_length("cell size", self.w_cell.value)
         if not 1e-9 <= d <= 1.0:
@@ -228,10 +238,12 @@ class QuietlayerPage:
             sx, sy = nx - SOURCE_GAP, min(b.source.y, ny // 3)
             source = replace(source, x=sx, y=sy)
             probes = angle_probes(nx, ny, sx, sy)
-        return b.with_changes(dx=d, dy=d, nx=nx, ny=ny, steps=int(self.w_steps.value),
-                              courant=self.w_courant.value, eps_r=self.w_eps.value, sigma=self.w_sigma_host.value,
-                              polarization=self.w_pol.value, precision=self.w_precision.value,
-                              source=source, probes=probes, boundary=Boundary(**sides))
+        s = b.with_changes(dx=d, dy=d, nx=nx, ny=ny, steps=int(self.w_steps.value),
+                           courant=self.w_courant.value, eps_r=self.w_eps.value, sigma=self.w_sigma_host.value,
+                           polarization=self.w_pol.value, precision=self.w_precision.value,
+                           source=source, probes=probes, boundary=Boundary(**sides))
+        check_work(s, VISITOR_BUDGET)  # any visitor may ask (controls, link, upload): refuse what one change cannot afford
+        return s
 
     # --- figures -------------------------------------------------------------
     def _make_plots(self):

@@ -53,6 +53,7 @@ def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, prese
     import panel as pn
 
     from .page import create_page
+    from .visitors import guard_link_parsing, ignore_closed_tabs
 
     if port == 0:
         with socket.socket() as probe:
@@ -61,6 +62,12 @@ def serve(port: int = 5006, address: str = "127.0.0.1", show: bool = True, prese
     origins = websocket_origins(address, port)
     print(f"quietlayer: open http://{'localhost' if address in ('127.0.0.1', 'localhost') else address}:{port}/ "
           "(Ctrl-C stops)", flush=True)
-    pn.serve({"/": lambda: create_page(preset)}, port=port, address=address, websocket_origin=origins,
+
+    def new_session():
+        ignore_closed_tabs()  # the server's event loop runs by now
+        return create_page(preset)
+
+    guard_link_parsing()
+    pn.serve({"/": new_session}, port=port, address=address, websocket_origin=origins,
              show=show, title="Quietlayer", threaded=False, verbose=False)
     return 0

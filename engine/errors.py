@@ -12,7 +12,18 @@ class ScenarioError(ValueError):
         self.field = field
         self.value = value
         self.allowed = allowed
-        super().__init__(f"{field} = {value!r} is not allowed: {allowed}")
+        super().__init__(f"{field} = {shown_value(value)} is not allowed: {allowed}")
+
+
+def shown_value(value, width: int = 80) -> str:
+    """repr(value), cut to `width` characters: a message stays one readable line
+    whatever was given (a megabyte of text, a table of thousands of rows)."""
+    try:
+        text = repr(value)
+    except ValueError:  # an integer too long for Python to write out
+        return f"<a number of about {value.bit_length() * 0.30103:.0f} digits>"
+    text = " ".join(text.split())
+    return text if len(text) <= width else text[: width - 3] + "..."
 
 
 class DivergenceError(RuntimeError):

@@ -207,7 +207,11 @@ def _table_lines(text: str, source_name: str, columns: tuple[str, ...]):
                             f"a header line naming the columns {', '.join(columns)}, then rows of numbers")
     header_no, header_line = lines[0]
     delimiter = next((d for d in _DELIMITERS if d in header_line), ",")
-    parse = lambda line: [cell.strip() for cell in next(csv.reader([line], delimiter=delimiter))]
+    def parse(line):
+        try:
+            return [cell.strip() for cell in next(csv.reader([line], delimiter=delimiter))]
+        except csv.Error as exc:  # a cell beyond the csv module's field limit, a NUL byte
+            raise ScenarioError(source_name, line, f"CSV lines of ordinary cells ({exc})") from None
     header = parse(header_line)
     rows = []
     for n, line in lines[1:]:

@@ -136,16 +136,26 @@ def _save(path: Path, ref: Reference) -> None:
 
 
 def _load(path: Path, key: str) -> Reference | None:
+    """The stored reference of `key`, or None when the file is missing, cut
+    short, garbage, of another format, or inconsistent: it is then computed
+    again (a wrong reference would mismeasure every layer silently)."""
     try:
         with np.load(path, allow_pickle=False) as z:
             if str(z["key"]) != key:
                 return None
             names = [str(n) for n in z["names"]]
-            probes = {n: z["probes"][i] for i, n in enumerate(names)}
-            return Reference(key=key, probes=probes, frame_steps=z["frame_steps"], frames=z["frames"],
-                             elapsed_s=float(z["elapsed_s"]), margin=tuple(int(v) for v in z["margin"]))
-    except (OSError, ValueError, KeyError, EOFError):
-        return None  # missing or unreadable: compute it again
+            series, frames, frame_steps = z["probes"], z["frames"], z["frame_steps"]
+            margin = tuple(int(v) for v in z["margin"])
+            elapsed_s = float(z["elapsed_s"])
+    except Exception:  # noqa: BLE001 - zip, npy and key errors of any damaged file: compute it again
+        return None
+    arrays_ok = (series.ndim == 2 and series.shape[0] == len(names) and frames.ndim == 3
+                 and frame_steps.ndim == 1 and frame_steps.shape[0] == frames.shape[0] and len(margin) == 2
+                 and all(a.dtype.kind == "f" and np.isfinite(a).all() for a in (series, frames)))
+    if not arrays_ok:
+        return None
+    return Reference(key=key, probes={n: series[i] for i, n in enumerate(names)}, frame_steps=frame_steps,
+                     frames=frames, elapsed_s=elapsed_s, margin=margin)
 
 
 class ReferenceCache:

@@ -11,6 +11,8 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import re
+import stat
 import tomllib
 import warnings
 from dataclasses import asdict, dataclass, field, fields, replace
@@ -30,7 +32,20 @@ SIDES = ("left", "right", "bottom", "top")
 LINE_AXES = ("", "x", "y")
 MAX_GRID_NODES = 64_000_000  # about 1 GB of float32 fields and coefficients
 MAX_STEPS = 2_000_000
+MAX_INTERIOR_CELLS = 20_000  # along x or y
 MIN_CELLS_PER_WAVELENGTH = 10  # common practice, no source
+MAX_PROBES = 1000
+MAX_PROFILE_ROWS = 100_000
+MAX_BLOCKS = 200  # each block repaints the whole material grid
+MAX_NAME_CHARS = 200  # titles, probe and block names
+# limits on scenario text, checked before it is parsed: a hostile file must be
+# refused in milliseconds, not parsed for minutes (a dotted key of a million
+# parts) or until the parser runs out of stack (inline tables nested thousands deep)
+MAX_TEXT_BYTES = 1 << 20  # 1 MiB: a 10,000-row inline profile fits
+MAX_PROFILE_BYTES = 4 << 20  # a profile CSV file
+MAX_NESTING = 16  # levels of [ ] and { }; a scenario needs 3
+MAX_KEY_PARTS = 8  # parts of a dotted key; a scenario needs 4 (layer.right.profile.depth)
+MAX_NUMBER_DIGITS = 40
 
 
 # --- small validators -------------------------------------------------------
@@ -47,7 +62,10 @@ def _number(name: str, value, lo: float = -math.inf, hi: float = math.inf,
     allowed = "a number " + " and ".join(parts) if parts else "a number"
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise ScenarioError(name, value, allowed)
-    v = float(value)
+    try:
+        v = float(value)
+    except OverflowError:  # an integer beyond any float
+        raise ScenarioError(name, value, allowed + " (finite)") from None
     if math.isnan(v) or (math.isinf(v) and not allow_inf):
         raise ScenarioError(name, value, allowed + " (finite)")
     if (v < lo) or (v > hi) or (lo_open and v == lo) or (hi_open and v == hi):
@@ -133,8 +151,8 @@ class Probe:
     y: int
 
     def __post_init__(self):
-        if not isinstance(self.name, str) or not self.name.strip():
-            raise ScenarioError("probe.name", self.name, "a non-empty text")
+        if not isinstance(self.name, str) or not self.name.strip() or len(self.name) > MAX_NAME_CHARS:
+            raise ScenarioError("probe.name", self.name, f"a non-empty text of at most {MAX_NAME_CHARS} characters")
         _set(self, "x", _integer(f"probe[{self.name}].x", self.x, 0, 1_000_000))
         _set(self, "y", _integer(f"probe[{self.name}].y", self.y, 0, 1_000_000))
 
@@ -157,7 +175,7 @@ class Block:
     name: str = ""
 
     def __post_init__(self):
-        label = f"block[{self.name}]" if self.name else "block"
+        label = f"block[{self.name}]" if isinstance(self.name, str) and 0 < len(self.name) <= MAX_NAME_CHARS else "block"
         for key in ("x0", "x1", "y0", "y1"):
             _set(self, key, _number(f"{label}.{key}", getattr(self, key), allow_inf=True))
         if not self.x0 < self.x1:
@@ -166,8 +184,8 @@ class Block:
             raise ScenarioError(f"{label}.y1", self.y1, f"> y0 = {self.y0:g}")
         _set(self, "eps_r", _number(f"{label}.eps_r", self.eps_r, 1.0, 1e4))
         _set(self, "sigma", _number(f"{label}.sigma", self.sigma, 0.0, 1e8))
-        if not isinstance(self.name, str):
-            raise ScenarioError(f"{label}.name", self.name, "a text")
+        if not isinstance(self.name, str) or len(self.name) > MAX_NAME_CHARS:
+            raise ScenarioError(f"{label}.name", self.name, f"a text of at most {MAX_NAME_CHARS} characters")
 
 
 @dataclass(frozen=True)
@@ -186,8 +204,10 @@ class Profile:
         for key in ("depth", "sigma", "kappa", "alpha"):
             raw = getattr(self, key)
             try:
+                if isinstance(raw, (str, bytes, dict)) or any(isinstance(v, bool) for v in raw):
+                    raise TypeError
                 values = tuple(float(v) for v in raw)
-            except (TypeError, ValueError):
+            except (TypeError, ValueError, OverflowError):
                 raise ScenarioError(f"profile.{key}", raw, "a list of numbers") from None
             if any(not math.isfinite(v) for v in values):
                 raise ScenarioError(f"profile.{key}", raw, "finite numbers only")
@@ -196,6 +216,8 @@ class Profile:
         n = len(columns["depth"])
         if n < 2:
             raise ScenarioError("profile.depth", self.depth, "at least 2 rows")
+        if n > MAX_PROFILE_ROWS:
+            raise ScenarioError("profile.depth", f"{n:,} rows", f"at most {MAX_PROFILE_ROWS:,} rows")
         for key in ("sigma", "kappa", "alpha"):
             if len(columns[key]) != n:
                 raise ScenarioError(f"profile.{key}", len(columns[key]), f"{n} rows, as many as depth")
@@ -329,20 +351,26 @@ class Scenario:
         _set(self, "dy", parse_length("dy", self.dy))
         for key in ("dx", "dy"):
             _number(key, getattr(self, key), 1e-12, 1e3, lo_open=False)
-        _set(self, "nx", _integer("nx", self.nx, 2, 20_000))
-        _set(self, "ny", _integer("ny", self.ny, 2, 20_000))
+        _set(self, "nx", _integer("nx", self.nx, 2, MAX_INTERIOR_CELLS))
+        _set(self, "ny", _integer("ny", self.ny, 2, MAX_INTERIOR_CELLS))
         _set(self, "steps", _integer("steps", self.steps, 1, MAX_STEPS))
         _set(self, "courant", _number("courant", self.courant, 0.0, 1.0, lo_open=True))
         _set(self, "eps_r", _number("eps_r", self.eps_r, 1.0, 1e4))
         _set(self, "sigma", _number("sigma", self.sigma, 0.0, 1e8))
         _choice("polarization", self.polarization, POLARIZATIONS)
         _choice("precision", self.precision, PRECISIONS)
+        if not isinstance(self.title, str) or len(self.title) > MAX_NAME_CHARS:
+            raise ScenarioError("title", self.title, f"a text of at most {MAX_NAME_CHARS} characters")
         if not isinstance(self.source, Source):
             raise ScenarioError("source", self.source, "a Source")
         if not isinstance(self.boundary, Boundary):
             raise ScenarioError("layer", self.boundary, "a Boundary")
         _set(self, "probes", tuple(self.probes))
         _set(self, "blocks", tuple(self.blocks))
+        if len(self.probes) > MAX_PROBES:
+            raise ScenarioError("probes", f"{len(self.probes)} probes", f"at most {MAX_PROBES}")
+        if len(self.blocks) > MAX_BLOCKS:
+            raise ScenarioError("blocks", f"{len(self.blocks)} blocks", f"at most {MAX_BLOCKS}")
         for b in self.blocks:
             if not isinstance(b, Block):
                 raise ScenarioError("blocks", b, "Block entries")
@@ -359,6 +387,7 @@ class Scenario:
             raise ScenarioError("source.line", "y", "'y' only when bottom and top are periodic (a plane wave)")
         if self.source.line == "x" and not self.boundary.periodic_x:
             raise ScenarioError("source.line", "x", "'x' only when left and right are periodic (a plane wave)")
+        self._check_time_step()
         nodes = (self.total_cells_x + 1) * (self.total_cells_y + 1)
         if nodes > MAX_GRID_NODES:
             raise ScenarioError("nx", self.nx, f"a grid of at most {MAX_GRID_NODES:,} nodes "
@@ -375,6 +404,18 @@ class Scenario:
             warnings.warn(f"only {cpw:.1f} cells per wavelength at f_max = {self.source.f_max:g} Hz "
                           f"(at least {MIN_CELLS_PER_WAVELENGTH} recommended): numerical dispersion "
                           "will dominate", ResolutionWarning, stacklevel=3)
+
+    def _check_time_step(self) -> None:
+        """The pulse must be over within MAX_STEPS steps: a Courant number so small
+        that it is not (5e-324 makes dt underflow to 0) is refused here, before
+        anything divides by dt."""
+        per_second = C0 * math.sqrt(1.0 / self.dx**2 + 1.0 / self.dy**2)  # steps per second at courant 1
+        lowest = self.source.pulse.end_time * per_second / MAX_STEPS
+        if self.courant < lowest or self.dt <= 0.0:
+            raise ScenarioError("courant", self.courant,
+                                f"a number >= {lowest:.3g} and <= 1 (a smaller time step makes the source "
+                                f"pulse, {self.source.pulse.end_time:.3g} s long, last more than "
+                                f"{MAX_STEPS:,} steps)")
 
     def _check_inside(self, name: str, x: int, y: int) -> None:
         if not 0 <= x <= self.nx:
@@ -431,7 +472,7 @@ class Scenario:
     @classmethod
     def from_toml(cls, text: str, base_dir=None) -> "Scenario":
         try:
-            data = tomllib.loads(text)
+            data = parse_toml(text)
         except tomllib.TOMLDecodeError as exc:
             raise ScenarioError("file", "TOML", f"valid TOML ({exc})") from None
         return cls.from_dict(data, base_dir)
@@ -456,6 +497,68 @@ def _digest(data: dict) -> str:
 
 
 # --- dict / TOML form -------------------------------------------------------
+
+class ScenarioTextError(ScenarioError):
+    """Scenario text refused before or while parsing it; `line` where (or None)."""
+
+    def __init__(self, field: str, value, allowed: str, line: int | None = None):
+        super().__init__(field, value, allowed)
+        self.line = line
+
+
+# strings and comments, so that brackets, dots and digits inside them are not counted
+_STRING_OR_COMMENT = re.compile(r'"""[\s\S]*?"""|\'\'\'[\s\S]*?\'\'\'|"(?:[^"\\\n]|\\.)*"|\'[^\'\n]*\'|#[^\n]*')
+_BRACKET = re.compile(r"[\[\]{}]")
+# possessive runs and a start only where a run starts: linear time on a megabyte of digits
+_LONG_DOTTED_KEY = re.compile(r"(?<![A-Za-z0-9_-])[A-Za-z0-9_-]++(?:[ \t]*+\.[ \t]*+[A-Za-z0-9_-]++){%d,}"
+                              % MAX_KEY_PARTS)
+_LONG_NUMBER = re.compile(r"(?<![0-9_])[0-9](?:_?[0-9]){%d,}" % MAX_NUMBER_DIGITS)
+
+
+def _blank_strings(text: str) -> str:
+    """`text` with every string and comment replaced by one bare-key character
+    (newlines kept, so line numbers stay)."""
+    return _STRING_OR_COMMENT.sub(lambda m: "_" + "\n" * m.group().count("\n"), text)
+
+
+def check_toml_limits(text: str) -> None:
+    """Refuse scenario text that is too large, nested too deep, or has a dotted
+    key or a number too long to be a scenario's (ScenarioTextError with the line)."""
+    if not isinstance(text, str):
+        raise ScenarioTextError("file", type(text).__name__, "TOML text")
+    size = len(text.encode("utf-8", "surrogatepass")) if len(text) * 4 > MAX_TEXT_BYTES else len(text)
+    if size > MAX_TEXT_BYTES:
+        raise ScenarioTextError("file", f"{size:,} bytes", f"at most {MAX_TEXT_BYTES:,} bytes of TOML")
+    bare = _blank_strings(text)
+    depth = 0
+    for match in _BRACKET.finditer(bare):
+        depth = depth + 1 if match.group() in "[{" else max(0, depth - 1)
+        if depth > MAX_NESTING:
+            line = bare.count("\n", 0, match.start()) + 1
+            raise ScenarioTextError("file", f"{depth} levels of nesting",
+                                    f"arrays and tables nested at most {MAX_NESTING} deep", line)
+    for pattern, what, allowed in (
+            (_LONG_DOTTED_KEY, "a dotted key", f"keys of at most {MAX_KEY_PARTS} parts"),
+            (_LONG_NUMBER, "a number", f"numbers of at most {MAX_NUMBER_DIGITS} digits")):
+        match = pattern.search(bare)
+        if match:
+            line = bare.count("\n", 0, match.start()) + 1
+            start = " ".join(match.group()[:24].split())
+            raise ScenarioTextError("file", f"{what} of {len(match.group()):,} characters ({start}...)", allowed,
+                                    line)
+
+
+def parse_toml(text: str) -> dict:
+    """The table in scenario text, after `check_toml_limits`.  Raises
+    tomllib.TOMLDecodeError for malformed TOML, ScenarioTextError otherwise."""
+    check_toml_limits(text)
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError:
+        raise
+    except (ValueError, RecursionError, MemoryError) as exc:  # the limits above should leave none
+        raise ScenarioTextError("file", "TOML", f"a scenario the reader can take ({type(exc).__name__})") from None
+
 
 _SCALAR_KEYS = ("title", "dx", "dy", "nx", "ny", "steps", "courant", "eps_r", "sigma",
                 "polarization", "precision")
@@ -485,24 +588,47 @@ def scenario_to_dict(s: Scenario) -> dict[str, Any]:
 
 
 def _profile_from_file(field: str, value, base_dir) -> Profile:
-    """The Profile in the CSV file `value` names (relative to base_dir)."""
+    """The Profile in the CSV file `value` names, relative to base_dir and
+    inside it (a scenario from elsewhere must not make the reader open files
+    of its choosing, nor wait on a pipe or a device)."""
     from .export import profile_from_csv  # export imports this module
 
     if base_dir is None:
         # text from elsewhere (a page upload) must not make the reader open files of its choosing
         raise ScenarioError(field, value, "only in a scenario read from a file (give the table inline "
                                           "as profile = {depth, sigma, kappa, alpha} instead)")
-    if not isinstance(value, str) or not value.strip():
-        raise ScenarioError(field, value, "the name of a CSV file with columns depth, sigma, kappa, alpha")
-    path = Path(value).expanduser()
-    if not path.is_absolute():
-        path = Path(base_dir) / path
+    what = "the name of a CSV file with columns depth, sigma, kappa, alpha, in the scenario's folder"
+    if not isinstance(value, str) or not value.strip() or "\0" in value or len(value) > 1024:
+        raise ScenarioError(field, value, what)
+    folder = Path(base_dir)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        folder = folder.resolve()
+        path = (folder / Path(value).expanduser()).resolve(strict=True)
+    except (OSError, RuntimeError) as exc:  # missing, a symlink loop, a name too long
+        reason = getattr(exc, "strerror", None) or str(exc)
+        raise ScenarioError(field, value, f"a readable CSV file ({reason}: {folder / value})") from None
+    if not path.is_relative_to(folder):
+        raise ScenarioError(field, value, f"a file in the scenario's folder {folder} or below it "
+                                          f"(this one is {path})")
+    try:
+        info = path.stat()
+    except OSError as exc:
+        raise ScenarioError(field, value, f"a readable CSV file ({exc.strerror or exc}: {path})") from None
+    if not stat.S_ISREG(info.st_mode):
+        raise ScenarioError(field, value, f"a regular file ({path} is a folder, a pipe or a device)")
+    if info.st_size > MAX_PROFILE_BYTES:
+        raise ScenarioError(field, value, f"a CSV file of at most {MAX_PROFILE_BYTES:,} bytes "
+                                          f"({path.name} has {info.st_size:,})")
+    try:
+        with path.open("rb") as fh:
+            raw = fh.read(MAX_PROFILE_BYTES + 1)  # the file may have grown since stat
+        text = raw.decode("utf-8-sig")
     except OSError as exc:
         raise ScenarioError(field, value, f"a readable CSV file ({exc.strerror or exc}: {path})") from None
     except UnicodeDecodeError:
         raise ScenarioError(field, value, f"a UTF-8 text file ({path} is not)") from None
+    if len(raw) > MAX_PROFILE_BYTES:
+        raise ScenarioError(field, value, f"a CSV file of at most {MAX_PROFILE_BYTES:,} bytes")
     try:
         return profile_from_csv(text, source_name="profile")
     except ScenarioError as exc:
@@ -554,6 +680,9 @@ def scenario_from_dict(data: dict, base_dir=None) -> Scenario:
     for key in ("x", "y", "f_max"):
         if key not in src:
             raise ScenarioError(f"source.{key}", None, "present (it has no default)")
+    for key in ("probes", "blocks"):
+        if not isinstance(data.get(key, []), list):
+            raise ScenarioError(key, data[key], f"an array of tables ([[{key}]] entries)")
     probes = []
     for i, p in enumerate(data.get("probes", [])):
         _check_keys(f"probes[{i}]", p, ("name", "x", "y"))

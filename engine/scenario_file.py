@@ -15,11 +15,13 @@ Malformed TOML keeps the line tomllib reports.
 from __future__ import annotations
 
 import re
+import stat
 import tomllib
 from pathlib import Path
 
+from .budget import WorkBudget, check_work
 from .errors import ScenarioError
-from .scenario import SIDES, Scenario
+from .scenario import MAX_TEXT_BYTES, SIDES, Scenario, ScenarioTextError, parse_toml
 
 __all__ = ["ScenarioFileError", "load_scenario", "field_line", "key_lines"]
 
@@ -44,16 +46,23 @@ class ScenarioFileError(ScenarioError):
         return self.args[0]
 
 
-def load_scenario(path) -> Scenario:
+def load_scenario(path, budget: WorkBudget | None = None, late_steps: int = 0) -> Scenario:
     """The Scenario in a TOML file; relative `profile_file` names start from
-    the file's folder.  Every problem raises ScenarioFileError."""
+    the file's folder.  Every problem raises ScenarioFileError.  The file is
+    read only up to MAX_TEXT_BYTES and checked against the text limits before
+    it is parsed, so a hostile file costs milliseconds.  With a `budget`, a
+    scenario whose measurement (and late-time check of `late_steps`) would
+    cost more is refused too, naming the field to change."""
     path = Path(path)
     try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        reason = exc.strerror or str(exc)
+        raw = _read_limited(path, MAX_TEXT_BYTES)
+    except (OSError, ValueError) as exc:  # ValueError: a NUL byte in the name
+        reason = getattr(exc, "strerror", None) or str(exc)
         raise ScenarioFileError(path, "file", str(path), "a readable file",
                                 detail=f"cannot read the file: {reason}") from None
+    if len(raw) > MAX_TEXT_BYTES:
+        raise ScenarioFileError(path, "file", str(path), "a smaller file",
+                                detail=f"more than {MAX_TEXT_BYTES:,} bytes: too large for a scenario file")
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -61,18 +70,34 @@ def load_scenario(path) -> Scenario:
         raise ScenarioFileError(path, "file", str(path), "UTF-8 text", line=line,
                                 detail="not UTF-8 text (a TOML scenario is plain text)") from None
     try:
-        data = tomllib.loads(text)
+        data = parse_toml(text)
     except tomllib.TOMLDecodeError as exc:
         line, message = _decode_error_line(exc)
         shown = _line_text(text, line)
         detail = f"not valid TOML: {message}" + (f" in: {shown}" if shown else "")
         raise ScenarioFileError(path, "file", shown, "valid TOML", line=line, detail=detail) from None
+    except ScenarioTextError as exc:
+        raise ScenarioFileError(path, exc.field, exc.value, exc.allowed, line=exc.line,
+                                detail=f"{exc.value} is not allowed: {exc.allowed}") from None
     try:
-        return Scenario.from_dict(data, base_dir=path.parent)
+        s = Scenario.from_dict(data, base_dir=path.parent)
+        if budget is not None:
+            check_work(s, budget, late_steps)
+        return s
     except ScenarioError as exc:
         line = field_line(exc.field, text, data, exc.value)
         raise ScenarioFileError(path, exc.field, exc.value, exc.allowed, line=line,
                                 detail=_describe(exc)) from None
+
+
+def _read_limited(path: Path, limit: int) -> bytes:
+    """The file's bytes, at most limit + 1 of them; a pipe or a device (which
+    could wait for ever or never end) is refused before it is opened."""
+    info = path.stat()
+    if not (stat.S_ISREG(info.st_mode) or stat.S_ISDIR(info.st_mode)):  # a folder fails with its own reason
+        raise OSError(f"{path} is not a regular file (a pipe or a device)")
+    with path.open("rb") as fh:
+        return fh.read(limit + 1)
 
 
 def _describe(exc: ScenarioError) -> str:

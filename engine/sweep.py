@@ -31,6 +31,7 @@ from typing import Callable, Iterable, Iterator
 
 import numpy as np
 
+from .budget import COMMAND_BUDGET, WorkBudget, check_work
 from .errors import DivergenceError, ScenarioError
 from .export import write_text_atomic
 from .measure import measure
@@ -186,12 +187,15 @@ def apply_point(base: Scenario, point: dict) -> Scenario:
 # --- one point ----------------------------------------------------------------
 
 def evaluate_point(base: Scenario, point: dict, *, threads: int | None = None,
-                   cache: ReferenceCache | None = None) -> dict:
-    """Measure one point; never raises for a bad point: the row says why."""
+                   cache: ReferenceCache | None = None, budget: WorkBudget = COMMAND_BUDGET) -> dict:
+    """Measure one point; never raises for a bad point: the row says why (a
+    point whose run is beyond `budget` is 'invalid' and never started)."""
     t0 = time.perf_counter()
     row = {"point": dict(point), "status": "ok", "reason": ""}
     try:
-        m = measure(apply_point(base, point), parts=SWEEP_PARTS, cache=cache, threads=threads)
+        s = apply_point(base, point)
+        check_work(s, budget)
+        m = measure(s, parts=SWEEP_PARTS, cache=cache, threads=threads)
     except ScenarioError as exc:
         row.update(status="invalid", reason=str(exc))
     except DivergenceError as exc:

@@ -8,11 +8,9 @@ SIGINT as shells report 128 + 2).
 import csv
 import json
 import math
-import queue
 import signal
 import subprocess
 import sys
-import threading
 from dataclasses import replace
 from pathlib import Path
 
@@ -27,6 +25,8 @@ from quietlayer.engine.export import read_coefficients_csv
 from quietlayer.engine.measure import measure
 from quietlayer.engine.scenario_file import load_scenario
 from quietlayer.engine.sweep import grid_points, parse_vary
+
+from processes import run_until
 
 ROOT = Path(__file__).parents[1]
 DEMO = ROOT / "assets" / "presets" / "demo.toml"
@@ -47,34 +47,10 @@ def _run(argv, capsys):
     return code, out, err
 
 
-def _default_sigint():
-    # the child must take Ctrl-C even when this test runs with SIGINT ignored
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
-
-
 def _signal_after(argv, prefix: str, count: int, signum):
     """Run the command, send `signum` once `count` stderr lines start with
     `prefix`; (exit code, stdout, stderr)."""
-    proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                            preexec_fn=_default_sigint)
-    lines: queue.Queue = queue.Queue()
-    reader = threading.Thread(target=lambda: [lines.put(l) for l in proc.stderr], daemon=True)
-    reader.start()
-    seen, err = 0, []
-    try:
-        while seen < count:
-            err.append(lines.get(timeout=120))
-            seen += err[-1].startswith(prefix)
-        proc.send_signal(signum)
-        code = proc.wait(timeout=120)  # its stdout is a few lines: the pipe cannot fill
-        out = proc.stdout.read()
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    reader.join(timeout=10)
-    while not lines.empty():
-        err.append(lines.get_nowait())
-    return code, out, "".join(err)
+    return run_until(argv, prefix, count, lambda proc: proc.send_signal(signum))
 
 
 # --- help and the demo ----------------------------------------------------------------

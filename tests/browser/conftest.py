@@ -446,3 +446,27 @@ def dashboard(open_dashboard) -> Dashboard:
 @pytest.fixture
 def page(dashboard):
     return dashboard.page if dashboard is not None else None
+
+
+@pytest.fixture(scope="session")
+def logged_server(browser, tmp_path_factory):
+    """A server of its own whose log a test reads (many visitors, hostile links)."""
+    if browser is None:
+        yield None
+        return
+    server = Server(tmp_path_factory.mktemp("quietlayer-serve-logged"))
+    try:
+        server.start()
+    except RuntimeError as exc:
+        pytest.fail(str(exc), pytrace=False)
+    yield server
+    server.stop()
+
+
+LOG_TROUBLE = re.compile(r"Traceback|\bERROR\b|Exception|exception was never retrieved")
+
+
+def log_trouble(server: Server, since: int = 0) -> list[str]:
+    """Lines of the server's log from byte `since` on that report an error."""
+    text = server.log_path.read_bytes()[since:].decode("utf-8", errors="replace")
+    return [line for line in text.splitlines() if LOG_TROUBLE.search(line)]
