@@ -27,7 +27,9 @@ Update coefficients come as scalars (a homogeneous field) or arrays
 (materials).
 """
 
+from llvmlite import ir
 from numba import njit, prange
+from numba.core.extending import intrinsic
 
 _SERIAL = dict(cache=True, nogil=True)
 _PARALLEL = dict(cache=True, nogil=True, parallel=True)
@@ -35,137 +37,239 @@ _ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cos
 # The row sweep only reads and writes arrays its caller owns: without reference
 # counting on the per-row views (and with numpy's error model) the compiler keeps
 # the row loops vectorised, about twice as fast as the default.
-_SWEEP = dict(cache=True, nogil=True, error_model="numpy", _nrt=False)
+_SWEEP = dict(cache=True, nogil=True, error_model="numpy", _nrt=False, fastmath={"contract"})
 LANES = 16  # y-slab columns per vector block: one AVX-512 register of float32
 
 
-# --- one row of the secondaries --------------------------------------------
+# --- column runs of one row -------------------------------------------------
+# Each helper updates one field on a run of columns of one row, given as 1D
+# row views.  numba wraps negative indices, and a select per load keeps a loop
+# scalar unless the compiler can prove the index non-negative, which it cannot
+# for a run-time start column: `index` states it, so the loops vectorise.  A
+# "psi" run is the update fused with the psi of a y-slab (or of a whole
+# x-slab row): the field and its difference are read once for both.
+
+@intrinsic
+def index(typingctx, j):
+    """j, which the caller guarantees is >= 0 (an llvm.assume; no code)."""
+    def codegen(context, builder, signature, args):
+        [value] = args
+        assume = builder.module.declare_intrinsic(
+            "llvm.assume", fnty=ir.FunctionType(ir.VoidType(), [ir.IntType(1)]))
+        builder.call(assume, [builder.icmp_signed(">=", value, value.type(0))])
+        return value
+    return j(j), codegen
+
+
+@njit(**_ROW)
+def s1_columns(p0, s1, gyh, j_lo, j_hi, homog, ca, cb, a1, b1):
+    """S1 = ca S1 - cb dP/dy on columns j_lo..j_hi-1 (a1, b1: per-node ca, cb)."""
+    if homog:
+        for jj in range(j_lo, j_hi):
+            j, j1 = index(jj), index(jj + 1)
+            s1[j] = ca * s1[j] - cb * ((p0[j1] - p0[j]) * gyh[j])
+    else:
+        for jj in range(j_lo, j_hi):
+            j, j1 = index(jj), index(jj + 1)
+            s1[j] = a1[j] * s1[j] - b1[j] * ((p0[j1] - p0[j]) * gyh[j])
+
+
+@njit(**_ROW)
+def s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, slab, i):
+    """Row i of S1 on the columns of one y-slab, with their psi:
+    psi <- b psi + c dP/dy;  S1 = (ca S1 - cb dP/dy gyh) - coef psi."""
+    start, bs, cs, psi, coef = slab
+    q, w = psi[i], coef[i]
+    if homog:
+        for k in range(bs.size):
+            j, j1 = index(start + k), index(start + k + 1)
+            d = p0[j1] - p0[j]
+            q[k] = bs[k] * q[k] + cs[k] * d
+            s1[j] = (ca * s1[j] - cb * (d * gyh[j])) - w[k] * q[k]
+    else:
+        for k in range(bs.size):
+            j, j1 = index(start + k), index(start + k + 1)
+            d = p0[j1] - p0[j]
+            q[k] = bs[k] * q[k] + cs[k] * d
+            s1[j] = (a1[j] * s1[j] - b1[j] * (d * gyh[j])) - w[k] * q[k]
+
+
+@njit(**_ROW)
+def s2_row(p0, p1, s2, g, homog, ca, cb, a2, b2):
+    """S2 = ca S2 + cb dP/dx on one row."""
+    if homog:
+        for j in range(s2.size):
+            s2[j] = ca * s2[j] + cb * ((p1[j] - p0[j]) * g)
+    else:
+        for j in range(s2.size):
+            s2[j] = a2[j] * s2[j] + b2[j] * ((p1[j] - p0[j]) * g)
+
+
+@njit(**_ROW)
+def s2_psi_row(p0, p1, s2, g, homog, ca, cb, a2, b2, bk, ck, q, w):
+    """S2 on one row of an x-slab with its psi: psi <- bk psi + ck dP/dx;
+    S2 = (ca S2 + cb dP/dx g) + coef psi."""
+    if homog:
+        for j in range(s2.size):
+            d = p1[j] - p0[j]
+            q[j] = bk * q[j] + ck * d
+            s2[j] = (ca * s2[j] + cb * (d * g)) + w[j] * q[j]
+    else:
+        for j in range(s2.size):
+            d = p1[j] - p0[j]
+            q[j] = bk * q[j] + ck * d
+            s2[j] = (a2[j] * s2[j] + b2[j] * (d * g)) + w[j] * q[j]
+
+
+@njit(**_ROW)
+def p_columns(p, s1, s2, s2m, g, gyn, j_lo, j_hi, homog, ca, cb, a, b):
+    """P = ca P + cb (dS2/dx - dS1/dy) on columns j_lo..j_hi-1 (j_lo >= 1)."""
+    if homog:
+        for jj in range(j_lo, j_hi):
+            j, jm = index(jj), index(jj - 1)
+            p[j] = ca * p[j] + cb * ((s2[j] - s2m[j]) * g - (s1[j] - s1[jm]) * gyn[j])
+    else:
+        for jj in range(j_lo, j_hi):
+            j, jm = index(jj), index(jj - 1)
+            p[j] = a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - (s1[j] - s1[jm]) * gyn[j])
+
+
+@njit(**_ROW)
+def p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a, b, slab, i):
+    """Row i of P on the columns of one y-slab (never column 0), with their psi:
+    psi <- b psi + c dS1/dy;  P = (ca P + cb curl) - coef psi."""
+    start, bs, cs, psi, coef = slab
+    q, w = psi[i], coef[i]
+    if homog:
+        for k in range(bs.size):
+            j, jm = index(start + k), index(start + k - 1)
+            d = s1[j] - s1[jm]
+            q[k] = bs[k] * q[k] + cs[k] * d
+            p[j] = (ca * p[j] + cb * ((s2[j] - s2m[j]) * g - d * gyn[j])) - w[k] * q[k]
+    else:
+        for k in range(bs.size):
+            j, jm = index(start + k), index(start + k - 1)
+            d = s1[j] - s1[jm]
+            q[k] = bs[k] * q[k] + cs[k] * d
+            p[j] = (a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - d * gyn[j])) - w[k] * q[k]
+
+
+@njit(**_ROW)
+def x_slab_of_row(lo, hi, i):
+    """The one of two x-slabs that holds row i (hi when neither does)."""
+    return lo if 0 <= i - lo[0] < lo[1].size else hi
+
+
+@njit(**_ROW)
+def column_runs(first, last, lo, hi):
+    """(a, b, c, d): the plain columns of a row are first..a-1, b..c-1 and
+    d..last-1, around the columns of the low and high y-slabs (lo, hi)."""
+    lo_start, lo_n = lo[0], lo[1].size
+    hi_start, hi_n = hi[0], hi[1].size
+    a = lo_start if lo_n > 0 else first
+    b = lo_start + lo_n if lo_n > 0 else first
+    c = hi_start if hi_n > 0 else last
+    d = hi_start + hi_n if hi_n > 0 else last
+    return a, b, c, d
+
+
+# --- one row of each field --------------------------------------------------
 
 @njit(**_ROW)
 def secondary_row(P, S1, S2, i, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
-    """S1[i] = ca S1 - cb dP/dy;  S2[i] = ca S2 + cb dP/dx (scalar or per-node ca, cb).
-
-    Works on 1D row views: unit-stride loops that the compiler vectorises."""
+    """S1[i] = ca S1 - cb dP/dy;  S2[i] = ca S2 + cb dP/dx (scalar or per-node ca, cb),
+    without psi."""
     nxp, nyp = P.shape
+    r = 0 if homog else i
+    s1_columns(P[i], S1[i], gyh, 0, nyp - 1, homog, ca, cb, ca1[r], cb1[r])
+    if i < nxp - 1:
+        s2_row(P[i], P[i + 1], S2[i], gxh[i], homog, ca, cb, ca2[r], cb2[r])
+
+
+@njit(**_ROW)
+def secondary_row_psi(P, S1, S2, i, sc, x_slabs, y_slabs):
+    """Row i of S1 and S2 with every psi term of the row (sc: see sweep_rows)."""
+    nxp, nyp = P.shape
+    homog, ca, cb, ca1, cb1, ca2, cb2 = sc
+    gxh, gyh = x_slabs[5], y_slabs[5]
+    r = 0 if homog else i
+    a1, b1 = ca1[r], cb1[r]
     p0 = P[i]
     s1 = S1[i]
-    if homog:
-        for j in range(nyp - 1):
-            s1[j] = ca * s1[j] - cb * ((p0[j + 1] - p0[j]) * gyh[j])
-    else:
-        a1 = ca1[i]
-        b1 = cb1[i]
-        for j in range(nyp - 1):
-            s1[j] = a1[j] * s1[j] - b1[j] * ((p0[j + 1] - p0[j]) * gyh[j])
+    ny = nyp - 1
+    lo, hi = y_slabs[0], y_slabs[1]
+    a, b, c, d = column_runs(0, ny, lo, hi)
+    s1_columns(p0, s1, gyh, 0, a, homog, ca, cb, a1, b1)
+    s1_columns(p0, s1, gyh, b, c, homog, ca, cb, a1, b1)
+    s1_columns(p0, s1, gyh, d, ny, homog, ca, cb, a1, b1)
+    s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, lo, i)
+    s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, hi, i)
     if i < nxp - 1:
         p1 = P[i + 1]
         s2 = S2[i]
-        g = gxh[i]
-        if homog:
-            for j in range(nyp):
-                s2[j] = ca * s2[j] + cb * ((p1[j] - p0[j]) * g)
+        a2, b2 = ca2[r], cb2[r]
+        slab = x_slab_of_row(x_slabs[0], x_slabs[1], i)
+        k = i - slab[0]
+        if 0 <= k < slab[1].size:
+            s2_psi_row(p0, p1, s2, gxh[i], homog, ca, cb, a2, b2, slab[1][k], slab[2][k], slab[3][k], slab[4][k])
         else:
-            a2 = ca2[i]
-            b2 = cb2[i]
-            for j in range(nyp):
-                s2[j] = a2[j] * s2[j] + b2[j] * ((p1[j] - p0[j]) * g)
+            s2_row(p0, p1, s2, gxh[i], homog, ca, cb, a2, b2)
 
-
-@njit(**_ROW)
-def psi_y_columns(source, target, i, start, b, c, psi, coef, k_lo, k_hi, shift):
-    """Columns k_lo..k_hi-1 of row i of a y-slab: psi <- b psi + c d(source)/dy with
-    the difference source[j + shift] - source[j + shift - 1];  target -= coef psi."""
-    for k in range(k_lo, k_hi):
-        j = start + k
-        psi[i, k] = b[k] * psi[i, k] + c[k] * (source[i, j + shift] - source[i, j + shift - 1])
-        target[i, j] -= coef[i, k] * psi[i, k]
-
-
-@njit(**_ROW)
-def psi_y_row(source, target, i, start, b, c, psi, coef, shift):
-    """Row i of a y-slab in blocks of LANES columns with a constant trip count,
-    which the compiler turns into whole vector operations (grid.py pads the slabs)."""
-    n = b.size
-    whole = n - n % LANES
-    for k0 in range(0, whole, LANES):
-        psi_y_columns(source, target, i, start, b, c, psi, coef, k0, k0 + LANES, shift)
-    psi_y_columns(source, target, i, start, b, c, psi, coef, whole, n, shift)
-
-
-@njit(**_ROW)
-def secondary_psi_y(P, S1, i, start, b, c, psi, coef):
-    """Row i of a y-slab of S1 (half nodes): psi <- b psi + c dP/dy;  S1 -= coef psi."""
-    psi_y_row(P, S1, i, start, b, c, psi, coef, 1)
-
-
-@njit(**_ROW)
-def secondary_psi_x(P, S2, i, start, b, c, psi, coef):
-    """Row i of S2 if it lies in this x-slab: psi <- b psi + c dP/dx;  S2 += coef psi."""
-    k = i - start
-    if 0 <= k < b.size:
-        bk = b[k]
-        ck = c[k]
-        p0 = P[i]
-        p1 = P[i + 1]
-        s2 = S2[i]
-        q = psi[k]
-        w = coef[k]
-        for j in range(s2.size):
-            q[j] = bk * q[j] + ck * (p1[j] - p0[j])
-            s2[j] += w[j] * q[j]
-
-
-# --- one row of the primary --------------------------------------------------
 
 @njit(**_ROW)
 def primary_row(P, S1, S2, i, homog, ca, cb, ca_arr, cb_arr, gxn, gyn):
-    """P[i] = ca P + cb (dS2/dx - dS1/dy) on the inner nodes of row i (1D row views)."""
+    """P[i] = ca P + cb (dS2/dx - dS1/dy) on the inner nodes of row i, without psi."""
     nyp = P.shape[1]
-    g = gxn[i]
-    p = P[i]
-    s1 = S1[i]
-    s2 = S2[i]
-    s2m = S2[i - 1]
-    if homog:
-        for j in range(1, nyp - 1):
-            p[j] = ca * p[j] + cb * ((s2[j] - s2m[j]) * g - (s1[j] - s1[j - 1]) * gyn[j])
-    else:
-        a = ca_arr[i]
-        b = cb_arr[i]
-        for j in range(1, nyp - 1):
-            p[j] = a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - (s1[j] - s1[j - 1]) * gyn[j])
+    r = 0 if homog else i
+    p_columns(P[i], S1[i], S2[i], S2[i - 1], gxn[i], gyn, 1, nyp - 1, homog, ca, cb, ca_arr[r], cb_arr[r])
 
 
 @njit(**_ROW)
-def primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi):
-    """Row i of P if it lies in this x-slab: psi <- b psi + c dS2/dx;  P += coef psi."""
+def primary_psi_x(S2, P, i, slab, j_lo, j_hi):
+    """Columns j_lo..j_hi-1 of row i of P, if the row lies in this x-slab:
+    psi <- b psi + c dS2/dx;  P += coef psi."""
+    start, b, c, psi, coef = slab
     k = i - start
     if 0 <= k < b.size:
         bk = b[k]
         ck = c[k]
-        s2 = S2[i]
-        s2m = S2[i - 1]
-        p = P[i]
-        q = psi[k]
-        w = coef[k]
-        for j in range(j_lo, j_hi):
+        s2, s2m, p, q, w = S2[i], S2[i - 1], P[i], psi[k], coef[k]
+        for jj in range(j_lo, j_hi):
+            j = index(jj)
             q[j] = bk * q[j] + ck * (s2[j] - s2m[j])
             p[j] += w[j] * q[j]
 
 
 @njit(**_ROW)
 def primary_psi_y(S1, P, i, start, b, c, psi, coef):
-    """Row i of a y-slab of P (never column 0): psi <- b psi + c dS1/dy;  P -= coef psi."""
-    psi_y_row(S1, P, i, start, b, c, psi, coef, 0)
+    """Row i of a y-slab of P, as a pass of its own (the periodic seam row):
+    psi <- b psi + c dS1/dy;  P -= coef psi."""
+    q, w, s1, p = psi[i], coef[i], S1[i], P[i]
+    for k in range(b.size):
+        j = start + k
+        q[k] = b[k] * q[k] + c[k] * (s1[j] - s1[j - 1])
+        p[j] -= w[k] * q[k]
 
 
-@njit(**_SERIAL)
-def primary_psi(S1, S2, P, i, x_slabs, y_slabs, j_lo, j_hi):
-    """All psi terms of row i of P: x-slabs over columns j_lo..j_hi-1, then y-slabs."""
-    for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
-        primary_psi_x(S2, P, i, start, b, c, psi, coef, j_lo, j_hi)
-    for start, b, c, psi, coef in (y_slabs[2], y_slabs[3]):
-        primary_psi_y(S1, P, i, start, b, c, psi, coef)
+@njit(**_ROW)
+def primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs):
+    """Inner row i of P with every psi term: the y-slab columns fused into the
+    row, then the x-slab psi (if the row is in one) as a second pass."""
+    nyp = P.shape[1]
+    homog, ca, cb, ca_arr, cb_arr = pc
+    r = 0 if homog else i
+    a_row, b_row = ca_arr[r], cb_arr[r]
+    gxn, gyn = x_slabs[4], y_slabs[4]
+    g = gxn[i]
+    p, s1, s2, s2m = P[i], S1[i], S2[i], S2[i - 1]
+    lo, hi = y_slabs[2], y_slabs[3]
+    a, b, c, d = column_runs(1, nyp - 1, lo, hi)
+    p_columns(p, s1, s2, s2m, g, gyn, 1, a, homog, ca, cb, a_row, b_row)
+    p_columns(p, s1, s2, s2m, g, gyn, b, c, homog, ca, cb, a_row, b_row)
+    p_columns(p, s1, s2, s2m, g, gyn, d, nyp - 1, homog, ca, cb, a_row, b_row)
+    p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a_row, b_row, lo, i)
+    p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a_row, b_row, hi, i)
+    primary_psi_x(S2, P, i, x_slab_of_row(x_slabs[2], x_slabs[3], i), 1, nyp - 1)
 
 
 # --- one whole step ---------------------------------------------------------
@@ -180,33 +284,17 @@ def sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, first, last, defer_first):
     seams, done elsewhere.  defer_first: leave P of row `first` for
     finish_primary_row, because the S2 row before it belongs to another chunk.
     """
-    nxp, nyp = P.shape
-    s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2 = sc
-    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
-    sx_lo, sx_hi, px_lo, px_hi, gxn, gxh = x_slabs
-    sy_lo, sy_hi, py_lo, py_hi, gyn, gyh = y_slabs
+    nxp = P.shape[0]
     for i in range(first, last):
-        secondary_row(P, S1, S2, i, s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2, gyh, gxh)
-        secondary_psi_y(P, S1, i, sy_lo[0], sy_lo[1], sy_lo[2], sy_lo[3], sy_lo[4])
-        secondary_psi_y(P, S1, i, sy_hi[0], sy_hi[1], sy_hi[2], sy_hi[3], sy_hi[4])
-        if i < nxp - 1:
-            secondary_psi_x(P, S2, i, sx_lo[0], sx_lo[1], sx_lo[2], sx_lo[3], sx_lo[4])
-            secondary_psi_x(P, S2, i, sx_hi[0], sx_hi[1], sx_hi[2], sx_hi[3], sx_hi[4])
+        secondary_row_psi(P, S1, S2, i, sc, x_slabs, y_slabs)
         if 1 <= i < nxp - 1 and not (defer_first and i == first):
-            primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
-            primary_psi_x(S2, P, i, px_lo[0], px_lo[1], px_lo[2], px_lo[3], px_lo[4], 1, nyp - 1)
-            primary_psi_x(S2, P, i, px_hi[0], px_hi[1], px_hi[2], px_hi[3], px_hi[4], 1, nyp - 1)
-            primary_psi_y(S1, P, i, py_lo[0], py_lo[1], py_lo[2], py_lo[3], py_lo[4])
-            primary_psi_y(S1, P, i, py_hi[0], py_hi[1], py_hi[2], py_hi[3], py_hi[4])
+            primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs)
 
 
 @njit(**_SWEEP)
 def finish_primary_row(P, S1, S2, pc, x_slabs, y_slabs, i):
     """P of one inner row and its psi terms (the deferred first row of a chunk)."""
-    nyp = P.shape[1]
-    p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr = pc
-    primary_row(P, S1, S2, i, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, x_slabs[4], y_slabs[4])
-    primary_psi(S1, S2, P, i, x_slabs, y_slabs, 1, nyp - 1)
+    primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs)
 
 
 @njit(**_PARALLEL)
@@ -277,8 +365,8 @@ def primary_seams(P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y):
             a = ca if homog else ca_arr[i, 0]
             b = cb if homog else cb_arr[i, 0]
             P[i, 0] = a * P[i, 0] + b * ((S2[i, 0] - S2[i - 1, 0]) * gxn[i] - (S1[i, 0] - S1[i, ny - 1]) * gyn[0])
-            for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
-                primary_psi_x(S2, P, i, start, b, c, psi, coef, 0, 1)
+            primary_psi_x(S2, P, i, x_slabs[2], 0, 1)
+            primary_psi_x(S2, P, i, x_slabs[3], 0, 1)
 
 
 @njit(**_SERIAL)
