@@ -38,6 +38,9 @@ _ROW = dict(cache=True, nogil=True, inline="always")  # row helpers: no call cos
 # counting on the per-row views (and with numpy's error model) the compiler keeps
 # the row loops vectorised, about twice as fast as the default.
 _SWEEP = dict(cache=True, nogil=True, error_model="numpy", _nrt=False, fastmath={"contract"})
+# Inlined into advance: one jitted level less, so the sweep's machine code is
+# optimised one time fewer when advance is compiled.
+_STEP = dict(cache=True, nogil=True, inline="always")
 LANES = 16  # y-slab columns per vector block: one AVX-512 register of float32
 
 
@@ -162,15 +165,15 @@ def x_slab_of_row(lo, hi, i):
 
 @njit(**_ROW)
 def column_runs(first, last, lo, hi):
-    """(a, b, c, d): the plain columns of a row are first..a-1, b..c-1 and
-    d..last-1, around the columns of the low and high y-slabs (lo, hi)."""
+    """(first, a, b, c, d, last): the plain columns of a row are first..a-1,
+    b..c-1 and d..last-1, around the columns of the y-slabs lo and hi."""
     lo_start, lo_n = lo[0], lo[1].size
     hi_start, hi_n = hi[0], hi[1].size
     a = lo_start if lo_n > 0 else first
     b = lo_start + lo_n if lo_n > 0 else first
     c = hi_start if hi_n > 0 else last
     d = hi_start + hi_n if hi_n > 0 else last
-    return a, b, c, d
+    return first, a, b, c, d, last
 
 
 # --- one row of each field --------------------------------------------------
@@ -198,12 +201,11 @@ def secondary_row_psi(P, S1, S2, i, sc, x_slabs, y_slabs):
     s1 = S1[i]
     ny = nyp - 1
     lo, hi = y_slabs[0], y_slabs[1]
-    a, b, c, d = column_runs(0, ny, lo, hi)
-    s1_columns(p0, s1, gyh, 0, a, homog, ca, cb, a1, b1)
-    s1_columns(p0, s1, gyh, b, c, homog, ca, cb, a1, b1)
-    s1_columns(p0, s1, gyh, d, ny, homog, ca, cb, a1, b1)
-    s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, lo, i)
-    s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, hi, i)
+    runs = column_runs(0, ny, lo, hi)
+    for run in range(3):  # one loop, not three inlined copies of it: less to compile
+        s1_columns(p0, s1, gyh, runs[2 * run], runs[2 * run + 1], homog, ca, cb, a1, b1)
+    for slab in (lo, hi):
+        s1_psi_slab(p0, s1, gyh, homog, ca, cb, a1, b1, slab, i)
     if i < nxp - 1:
         p1 = P[i + 1]
         s2 = S2[i]
@@ -263,38 +265,35 @@ def primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs):
     g = gxn[i]
     p, s1, s2, s2m = P[i], S1[i], S2[i], S2[i - 1]
     lo, hi = y_slabs[2], y_slabs[3]
-    a, b, c, d = column_runs(1, nyp - 1, lo, hi)
-    p_columns(p, s1, s2, s2m, g, gyn, 1, a, homog, ca, cb, a_row, b_row)
-    p_columns(p, s1, s2, s2m, g, gyn, b, c, homog, ca, cb, a_row, b_row)
-    p_columns(p, s1, s2, s2m, g, gyn, d, nyp - 1, homog, ca, cb, a_row, b_row)
-    p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a_row, b_row, lo, i)
-    p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a_row, b_row, hi, i)
+    runs = column_runs(1, nyp - 1, lo, hi)
+    for run in range(3):
+        p_columns(p, s1, s2, s2m, g, gyn, runs[2 * run], runs[2 * run + 1], homog, ca, cb, a_row, b_row)
+    for slab in (lo, hi):
+        p_psi_slab(p, s1, s2, s2m, g, gyn, homog, ca, cb, a_row, b_row, slab, i)
     primary_psi_x(S2, P, i, x_slab_of_row(x_slabs[2], x_slabs[3], i), 1, nyp - 1)
 
 
 # --- one whole step ---------------------------------------------------------
 
 @njit(**_SWEEP)
-def sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, first, last, defer_first):
-    """Rows first..last-1 of one step: S1, S2 and their psi, then P and its psi.
+def sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, first, last, p_first, secondaries):
+    """Rows first..last-1 of one step: S1, S2 and their psi (if `secondaries`),
+    then P and its psi from row p_first on.
 
     sc = (homog, ca, cb, ca1, cb1, ca2, cb2); pc = (homog, ca, cb, ca_arr, cb_arr);
     x_slabs = (S2 low, S2 high, P low, P high, gxn, gxh), y_slabs likewise with
     S1 and (gyn, gyh).  Row 0 and the last row of P are walls or periodic
-    seams, done elsewhere.  defer_first: leave P of row `first` for
-    finish_primary_row, because the S2 row before it belongs to another chunk.
+    seams, done elsewhere.  A chunk of rows after the first sets p_first =
+    first + 1: P of its first row needs the S2 row before it, which belongs
+    to another chunk, so step_rows does that row afterwards with
+    secondaries False.  (One function for both, so it is compiled once.)
     """
     nxp = P.shape[0]
     for i in range(first, last):
-        secondary_row_psi(P, S1, S2, i, sc, x_slabs, y_slabs)
-        if 1 <= i < nxp - 1 and not (defer_first and i == first):
+        if secondaries:
+            secondary_row_psi(P, S1, S2, i, sc, x_slabs, y_slabs)
+        if i >= p_first and 1 <= i < nxp - 1:
             primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs)
-
-
-@njit(**_SWEEP)
-def finish_primary_row(P, S1, S2, pc, x_slabs, y_slabs, i):
-    """P of one inner row and its psi terms (the deferred first row of a chunk)."""
-    primary_row_psi(P, S1, S2, i, pc, x_slabs, y_slabs)
 
 
 @njit(**_PARALLEL)
@@ -318,26 +317,26 @@ def sweep_chunks(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
               (c_start, c_b, c_c, c_psi, c_coef), (d_start, d_b, d_c, d_psi, d_coef), gxn, gxh)
         ys = ((e_start, e_b, e_c, e_psi, e_coef), (f_start, f_b, f_c, f_psi, f_coef),
               (g_start, g_b, g_c, g_psi, g_coef), (h_start, h_b, h_c, h_psi, h_coef), gyn, gyh)
+        first = chunk_starts[chunk]
         sweep_rows(P, S1, S2, (s_homog, s_ca, s_cb, s_ca1, s_cb1, s_ca2, s_cb2),
                    (p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr), xs, ys,
-                   chunk_starts[chunk], chunk_starts[chunk + 1], chunk > 0)
+                   first, chunk_starts[chunk + 1], first + 1 if chunk > 0 else first, chunk >= 0)
 
 
-@njit(**_SERIAL)
+@njit(**_STEP)
 def step_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts):
     """One step over every row: in one sweep, or in parallel chunks whose first
     P rows wait until every chunk's S2 is done."""
     nxp = P.shape[0]
     if chunk_starts.size <= 2:
-        # run-time values, not literals: a literal 0 or False would compile a second copy of the sweep
-        no_deferral = chunk_starts.size < 0
-        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts[0], nxp, no_deferral)
+        # run-time values, not literals: a literal would compile a second copy of the sweep
+        first = chunk_starts[0]
+        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, first, nxp, first, chunk_starts.size > 0)
         return
     sweep_chunks(P, S1, S2, sc, pc, x_slabs, y_slabs, chunk_starts)
     for chunk in range(1, chunk_starts.size - 1):
         i = chunk_starts[chunk]
-        if 1 <= i < nxp - 1:
-            finish_primary_row(P, S1, S2, pc, x_slabs, y_slabs, i)
+        sweep_rows(P, S1, S2, sc, pc, x_slabs, y_slabs, i, i + 1, i, chunk_starts.size < 0)
 
 
 # --- periodic seams ---------------------------------------------------------
