@@ -168,7 +168,8 @@ def build_grid(s: Scenario) -> YeeGrid:
         return np.int64(start), cast(b), cast(c), np.zeros(shape, dtype), cast(coef)
 
     def pad_columns(rows, low: bool, first_col: int, last_col: int):
-        """Pad a y-slab to whole LANES-column blocks on its interior side, if it fits."""
+        """Pad a y-slab to whole LANES-column blocks on its interior side, if the
+        padded columns stay within first_col..last_col."""
         start, b, c = rows
         n = b.size
         extra = (-n) % LANES
@@ -180,9 +181,16 @@ def build_grid(s: Scenario) -> YeeGrid:
             return start - extra, np.concatenate([np.zeros(extra), b]), np.concatenate([np.zeros(extra), c])
         return rows
 
+    def pad_pair(low_rows, high_rows, first_col: int, last_col: int):
+        """Both y-slabs of one field, padded without reaching into each other:
+        the kernels update a slab's columns in the same pass as the field."""
+        high_start = high_rows[0] if high_rows[1].size else last_col + 1
+        low_rows = pad_columns(low_rows, True, first_col, high_start - 1)
+        low_end = low_rows[0] + low_rows[1].size if low_rows[1].size else first_col
+        return low_rows, pad_columns(high_rows, False, low_end, last_col)
+
     # S1 columns 0..NY-1 exist; P's y-psi must stay on inner columns 1..NY-1
-    y_rows = (pad_columns(y_rows[0], True, 0, NY - 1), pad_columns(y_rows[1], False, 0, NY - 1),
-              pad_columns(y_rows[2], True, 1, NY - 1), pad_columns(y_rows[3], False, 1, NY - 1))
+    y_rows = pad_pair(y_rows[0], y_rows[1], 0, NY - 1) + pad_pair(y_rows[2], y_rows[3], 1, NY - 1)
     gxn, gxh, gyn, gyh = cast(gxn), cast(gxh), cast(gyn), cast(gyh)
     x_slabs = (slab(x_rows[0], True, cb_s2), slab(x_rows[1], True, cb_s2),
                slab(x_rows[2], True, cb_primary), slab(x_rows[3], True, cb_primary), gxn, gxh)

@@ -77,15 +77,15 @@ def field_energy(grid: YeeGrid, P, S1, S2, window: tuple[slice, slice] | None = 
         wx, wy = slice(0, ux), slice(0, uy)
     else:
         wx, wy = window
-    hx = slice(wx.start, min(wx.stop, nx))  # half nodes between the window's nodes
-    hy = slice(wy.start, min(wy.stop, ny))
-    Pv, S1v, S2v = P[wx, wy], S1[wx, hy], S2[hx, wy]
+    px, py = wx.indices(nx + 1)[:2], wy.indices(ny + 1)[:2]  # (first, stop) on the nodes
+    hx = (px[0], min(px[1], nx))  # half nodes between the window's nodes
+    hy = (py[0], min(py[1], ny))
     if grid.electric_primary:
-        total = (kernels.sum_weighted_squares(Pv, grid.eps_p[wx, wy])
-                 + kernels.sum_squares(S1v) + kernels.sum_squares(S2v))
+        total = (kernels.sum_weighted_squares(P, grid.eps_p, *px, *py)
+                 + kernels.sum_squares(S1, *px, *hy) + kernels.sum_squares(S2, *hx, *py))
     else:
-        total = (kernels.sum_squares(Pv) + kernels.sum_weighted_squares(S1v, grid.eps_1[wx, hy])
-                 + kernels.sum_weighted_squares(S2v, grid.eps_2[hx, wy]))
+        total = (kernels.sum_squares(P, *px, *py) + kernels.sum_weighted_squares(S1, grid.eps_1, *px, *hy)
+                 + kernels.sum_weighted_squares(S2, grid.eps_2, *hx, *py))
     s = grid.scenario
     return 0.5 * EPS0 * s.dx * s.dy * total
 

@@ -92,6 +92,21 @@ def test_psi_lives_only_in_the_layer():
     assert total < 0.5 * (NX + 1) * (NY + 1) * 4  # no full-grid psi arrays
 
 
+@pytest.mark.parametrize("ny", [6, 12, 30])
+def test_padded_y_slabs_never_reach_each_other(ny):
+    # The kernels update a y-slab's columns in the same loop as the field, so
+    # the padding of one slab may not cover columns of the other (nor the
+    # wall column 0 of P); a narrow grid keeps the layer cells unpadded.
+    g = build_grid(scenario(Side(cells=10), ny=ny, source=Source(x=20, y=ny // 2, f_max=8e9),
+                            probes=(Probe("p", 5, ny // 2),)))
+    NY = g.cells[1]
+    for (lo_start, lo_b, *_), (hi_start, hi_b, *_), first in ((g.y_slabs[0], g.y_slabs[1], 0),
+                                                            (g.y_slabs[2], g.y_slabs[3], 1)):
+        assert lo_start >= first and lo_start + lo_b.size <= hi_start
+        assert hi_start + hi_b.size <= NY
+        assert np.count_nonzero(lo_b) == np.count_nonzero(hi_b) == 10  # padding is b = 0
+
+
 def test_user_profile_at_exact_nodes_reproduces_the_graded_layer():
     # A tabulated profile sampled at every node and half node is the same layer.
     side = Side(cells=10, order=3.0, sigma_ratio=1.0, kappa_max=4.0, alpha_max=0.03)

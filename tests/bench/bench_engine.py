@@ -1,15 +1,21 @@
-"""Throughput of the numba engine against the NumPy reference, run by hand:
+"""Throughput of the numba engine against a plain C loop of the same update,
+run by hand:
 
     python tests/bench/bench_engine.py
 
 Grids of 256x256 and 2048x2048 cells in total (a 10-cell CPML on four sides
-included), float32 and float64; the engine with 1 and 2 threads, NumPy in
-one thread.  Mcells/s = total cells x steps / seconds of stepping, timed
-inside the run (RunResult.elapsed_s for the engine).  Each case is the median
-of several runs of at least MIN_RUN_S, the cases interleaved so that a burst
-of load on a shared machine hits them alike.  For 2048x2048 it also prints a
+included), float32 and float64; the engine and the C loop (c_loop.c, built
+here with `cc -O3 -march=native -fopenmp`; skipped with a message when there
+is no compiler) each with 1 and 2 threads, the C loop's probe values checked
+against the engine's before it is timed.  Mcells/s = total cells x steps /
+seconds of stepping, timed inside the run (RunResult.elapsed_s for the
+engine, around the C call for the loop).  Each case is the median of several
+runs of at least MIN_RUN_S, the cases interleaved so that a burst of load on
+a shared machine hits them alike.  For 2048x2048 it also prints a
 memory-traffic bound from a stream bandwidth measured in the same run.  The
-last line is the 256x256 float32 summary.
+last line compares the best of 1 and 2 threads of each at 256x256 float32.
+The NumPy reference (numpy_reference.py) is checked against the engine first,
+as an independent implementation of the update.
 """
 
 from __future__ import annotations
@@ -35,20 +41,22 @@ import numpy as np  # noqa: E402
 from quietlayer.engine import (Boundary, Probe, ResolutionWarning, Scenario, Side, Source,  # noqa: E402
                                build_grid, simulate)
 
-from numpy_reference import NumpyStepper, check_against_engine, grid_slabs, run_numpy  # noqa: E402
+from c_baseline import FLAGS, CStepper, build_c_loop  # noqa: E402
+from numpy_reference import check_against_engine, grid_slabs, relative_difference  # noqa: E402
 
 GRID_SIZES = (256, 2048)  # total cells per axis, layers included
 PRECISIONS = ("float32", "float64")
-ENGINE_THREADS = (1, 2)
+THREADS = (1, 2)  # of the engine and of the C loop
+C_CHECK_STEPS = {256: 300, 2048: 60}  # enough for the pulse to pass the probe
+C_CHECK_RTOL = {"float32": 1e-4, "float64": 1e-10}  # cc fuses multiply-adds, numba does not
 LAYER_CELLS = 10
 REPEATS = 7
 MIN_RUN_S = 0.3
 TARGET_RUN_S = 0.45  # aim above MIN_RUN_S so a quiet spell still clears it
 # An engine run carries a fixed cost (first touch of its new fields, the final
 # energy check), tens of ms on the large grid: longer runs there keep the
-# figure close to the steady rate.
-TARGET_RUN_S_LARGE_ENGINE = 1.0
-STRIP_BYTES = 512 * 1024  # NumPy scratch strip sized to stay in a 1 MiB L2
+# figure close to the steady rate (the C loop gets the same length).
+TARGET_RUN_S_LARGE = 1.0
 STREAM_MBYTES = 256
 # Field and coefficient arrays touched per cell and step by two sweeps:
 # secondary reads P, S1, S2 and writes S1, S2; primary reads P, S1, S2, ca, cb
@@ -75,7 +83,7 @@ def clear_psi(grid) -> None:
 class EngineCase:
     def __init__(self, grid, threads: int):
         self.grid, self.threads = grid, threads
-        self.label, self.detail = "engine", f"{threads} thread" + ("s" if threads > 1 else "")
+        self.label = "engine"
 
     def run(self, steps: int) -> float:
         clear_psi(self.grid)
@@ -83,23 +91,30 @@ class EngineCase:
         return simulate(scenario, grid=self.grid, threads=self.threads).elapsed_s
 
 
-class NumpyCase:
-    def __init__(self, grid, block_rows: int | None):
-        self.stepper = NumpyStepper(grid, block_rows=block_rows)
-        self.grid = grid
-        self.label = "numpy"
-        self.detail = "whole arrays" if block_rows is None else f"{block_rows}-row strips"
+class CCase:
+    def __init__(self, stepper: CStepper, threads: int):
+        self.stepper, self.threads = stepper, threads
+        self.label = "C loop"
 
     def run(self, steps: int) -> float:
-        scenario = self.grid.scenario.with_changes(steps=steps)
-        return run_numpy(scenario, stepper=self.stepper)[1]
+        return self.stepper.run(steps, self.threads)[1]
 
 
-def strip_rows(grid) -> int | None:
-    """Rows per NumPy strip, or None when the grid is only a few strips tall."""
-    row_bytes = (grid.cells[1] + 1) * grid.dtype.itemsize
-    rows = max(8, STRIP_BYTES // row_bytes)
-    return None if 4 * rows > grid.cells[0] + 1 else int(rows)
+def check_c_loop(grid, stepper: CStepper, total_cells: int) -> str:
+    """The C loop's probe series against the engine's (1 and 2 threads each);
+    raises AssertionError beyond C_CHECK_RTOL of the probe's peak."""
+    steps = C_CHECK_STEPS[total_cells]
+    precision = grid.dtype.name
+    clear_psi(grid)
+    run = simulate(grid.scenario.with_changes(steps=steps), grid=grid, threads=1)
+    engine = np.stack([run.probes[p.name] for p in grid.scenario.probes], axis=1)
+    if not np.abs(engine).max() > 0:
+        raise AssertionError("the probe saw no field; the check would be empty")
+    worst = max(relative_difference(stepper.run(steps, t)[0], engine) for t in THREADS)
+    if worst > C_CHECK_RTOL[precision]:
+        raise AssertionError(f"C loop and engine probes differ by {worst:.2e} relative "
+                             f"({grid.cells[0]}x{grid.cells[1]} {precision}, limit {C_CHECK_RTOL[precision]:g})")
+    return f"{worst:.1e}"
 
 
 def scaled_steps(steps: int, seconds: float, target_s: float) -> int:
@@ -148,22 +163,24 @@ def timed_run(case, steps: int, target_s: float):
     return steps, seconds, others
 
 
-def bench_grid(total_cells: int, precision: str):
+def bench_grid(total_cells: int, precision: str, c_libs):
     """Rows of the table for one grid size and precision."""
     grid = build_grid(bench_scenario(total_cells, precision, steps=1))
     nx, ny = grid.cells
-    cases = [EngineCase(grid, t) for t in ENGINE_THREADS]
-    strips = strip_rows(grid)
-    cases += [NumpyCase(grid, None)] + ([NumpyCase(grid, strips)] if strips else [])
+    cases = [EngineCase(grid, t) for t in THREADS]
+    checked = None
+    if c_libs is not None:
+        stepper = CStepper(grid, c_libs[precision])
+        checked = check_c_loop(grid, stepper, total_cells)
+        cases += [CCase(stepper, t) for t in THREADS]
     large = total_cells > 512
     first_steps = 2 if large else 40
-    targets = [TARGET_RUN_S_LARGE_ENGINE if large and case.label == "engine" else TARGET_RUN_S
-               for case in cases]
-    steps = [steps_for(case, first_steps, target) for case, target in zip(cases, targets)]
+    target = TARGET_RUN_S_LARGE if large else TARGET_RUN_S
+    steps = [steps_for(case, first_steps, target) for case in cases]
     runs = [[] for _ in cases]  # (steps, seconds, other cores)
     for _ in range(REPEATS):
         for n, case in enumerate(cases):
-            run = timed_run(case, steps[n], targets[n])
+            run = timed_run(case, steps[n], target)
             steps[n] = run[0]
             runs[n].append(run)
     rows = []
@@ -173,32 +190,50 @@ def bench_grid(total_cells: int, precision: str):
         if large and case.label == "engine":
             fixed_s = statistics.median(case.run(1) for _ in range(3))
         rows.append(dict(grid=f"{nx}x{ny}", cells=nx, precision=precision, label=case.label,
-                         detail=case.detail, steps=max(n for n, _, _ in record),
+                         threads=case.threads, steps=max(n for n, _, _ in record),
                          median_s=statistics.median(t for _, t, _ in record),
                          shortest_s=min(t for _, t, _ in record), mcells=statistics.median(rates),
                          low=min(rates), high=max(rates), others=max(o for _, _, o in record),
-                         fixed_s=fixed_s))
+                         fixed_s=fixed_s, checked=checked))
     return rows
 
 
+def best(rows, label: str, cells: int, precision: str) -> float:
+    """Best of 1 and 2 threads (median Mcells/s) of one implementation, or nan."""
+    rates = [r["mcells"] for r in rows
+             if (r["label"], r["cells"], r["precision"]) == (label, cells, precision)]
+    return max(rates) if rates else math.nan
+
+
 def print_table(rows) -> None:
-    header = (f"{'grid':>9}  {'dtype':7}  {'impl':6}  {'variant':16}  {'steps':>6}  {'median s':>8}  "
-              f"{'Mcells/s':>9}  {'range (min..max)':>17}  {'x numpy':>7}  {'others':>6}")
+    header = (f"{'grid':>9}  {'dtype':7}  {'impl':6}  {'threads':>7}  {'steps':>6}  {'median s':>8}  "
+              f"{'Mcells/s':>9}  {'range (min..max)':>17}  {'spread':>6}  {'others':>6}")
     print(header)
     print("-" * len(header))
     for r in rows:
-        numpy_best = max(o["mcells"] for o in rows if o["label"] == "numpy"
-                         and (o["grid"], o["precision"]) == (r["grid"], r["precision"]))
         flag = "  (a run under %.1f s)" % MIN_RUN_S if r["shortest_s"] < MIN_RUN_S else ""
-        print(f"{r['grid']:>9}  {r['precision']:7}  {r['label']:6}  {r['detail']:16}  {r['steps']:>6}  "
+        spread = (r["high"] - r["low"]) / r["mcells"]
+        print(f"{r['grid']:>9}  {r['precision']:7}  {r['label']:6}  {r['threads']:>7}  {r['steps']:>6}  "
               f"{r['median_s']:>8.3f}  {r['mcells']:>9.1f}  {r['low']:>8.1f}..{r['high']:<8.1f}  "
-              f"{r['mcells'] / numpy_best:>7.2f}  {r['others']:>6.2f}{flag}")
-    print("others: the most CPU cores that other processes used during one of the case's runs")
+              f"{spread:>6.0%}  {r['others']:>6.2f}{flag}")
+    print("spread: (max - min) / median of the repeats; others: the most CPU cores that other "
+          "processes used during one of the case's runs")
     for r in rows:
         if r["fixed_s"] is not None:
-            print(f"  engine {r['grid']} {r['precision']} {r['detail']}: a 1-step run takes "
+            print(f"  engine {r['grid']} {r['precision']} {r['threads']} thread(s): a 1-step run takes "
                   f"{r['fixed_s'] * 1e3:.0f} ms, about {r['fixed_s'] / r['median_s']:.0%} of the runs above "
                   "(new fields first touched, energy check)")
+    print()
+    print("best of 1 and 2 threads (medians), engine / C loop:")
+    print(f"  {'grid':>9}  {'dtype':7}  {'engine':>9}  {'C loop':>9}  {'ratio':>6}  C agrees with the engine to")
+    for cells in GRID_SIZES:
+        for precision in PRECISIONS:
+            here = [r for r in rows if (r["cells"], r["precision"]) == (cells, precision)]
+            if not here:
+                continue
+            engine, c = best(rows, "engine", cells, precision), best(rows, "C loop", cells, precision)
+            print(f"  {here[0]['grid']:>9}  {precision:7}  {engine:>9.1f}  {c:>9.1f}  {engine / c:>6.2f}  "
+                  f"{here[0]['checked'] or '-'}")
 
 
 # --- stream bandwidth and the traffic bound ---------------------------------
@@ -266,15 +301,15 @@ def print_bound(rows, bandwidth: dict) -> None:
         here = [r for r in rows if r["cells"] == max(GRID_SIZES) and r["precision"] == precision]
         if not here:
             continue
-        engine = max(r["mcells"] for r in here if r["label"] == "engine")
-        numpy_best = max(r["mcells"] for r in here if r["label"] == "numpy")
+        engine = best(rows, "engine", max(GRID_SIZES), precision)
+        c = best(rows, "C loop", max(GRID_SIZES), precision)
         itemsize = np.dtype(precision).itemsize
         for name, accesses in forms:
             per_cell = accesses * itemsize
             bound = peak / per_cell / 1e6
             print(f"  {precision}  {name:30} {per_cell:3d} B/cell/step  bound {bound:7.1f} Mcells/s  "
                   f"engine {engine:6.1f} = {engine / bound:4.0%}  "
-                  f"numpy {numpy_best:6.1f} = {numpy_best / bound:4.0%}")
+                  f"C loop {c:6.1f} = {c / bound:4.0%}")
         print()
 
 
@@ -293,26 +328,35 @@ def main() -> int:
         print(f"ABORT: {err}")
         return 1
     print(f"numba threading layer: {numba.threading_layer()}")
+    c_libs = build_c_loop()
+    if isinstance(c_libs, str):
+        print(f"C loop skipped: {c_libs}")
+        c_libs = None
+    else:
+        print("C loop: c_loop.c built with " + " ".join(FLAGS) + "; its probes are checked against "
+              "the engine's before each grid is timed")
     print()
 
     rows = []
     for total in GRID_SIZES:
         for precision in PRECISIONS:
-            rows += bench_grid(total, precision)
+            try:
+                rows += bench_grid(total, precision, c_libs)
+            except AssertionError as err:
+                print(f"ABORT: {err}")
+                return 1
             print(f"  measured {total}x{total} {precision} ({time.perf_counter() - t_start:.0f} s so far)",
                   flush=True)
     print()
     print_table(rows)
     print_bound(rows, stream_bandwidth())
 
-    small = [r for r in rows if r["cells"] == min(GRID_SIZES) and r["precision"] == "float32"]
-    engine = max(r["mcells"] for r in small if r["label"] == "engine")
-    numpy_rate = max(r["mcells"] for r in small if r["label"] == "numpy")
+    small = min(GRID_SIZES)
+    engine, c = best(rows, "engine", small, "float32"), best(rows, "C loop", small, "float32")
     print(f"total bench time {time.perf_counter() - t_start:.0f} s, "
           f"load average now {os.getloadavg()[0]:.2f} "
           "(one other busy process pulls the 2-thread figures below the 1-thread ones)")
-    print(f"engine_mcells_per_s={engine:.1f} numpy_mcells_per_s={numpy_rate:.1f} "
-          f"speedup={engine / numpy_rate:.2f}")
+    print(f"engine_mcells_per_s={engine:.1f} c_mcells_per_s={c:.1f} ratio_to_c={engine / c:.2f}")
     return 0
 
 
