@@ -94,10 +94,11 @@ def _psi_primary_y(S1, P, start, b, c, psi, coef, rows):
 def _psi_primary(P, S1, S2, x_slabs, y_slabs):
     nxp, nyp = P.shape
     inner = (1, nxp - 1)
-    for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
-        _psi_primary_x(S2, P, start, b, c, psi, coef, inner, slice(1, nyp - 1))
+    # the kernels fuse the y-psi into the row and add the x-psi after it: the same order here
     for start, b, c, psi, coef in (y_slabs[2], y_slabs[3]):
         _psi_primary_y(S1, P, start, b, c, psi, coef, inner)
+    for start, b, c, psi, coef in (x_slabs[2], x_slabs[3]):
+        _psi_primary_x(S2, P, start, b, c, psi, coef, inner, slice(1, nyp - 1))
 
 
 def primary_seams(P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y):
@@ -193,14 +194,14 @@ def cone_finish(n, P, S1, S2, pc, x_slabs, y_slabs, gxn, gyn, reach_source, reac
 
 # --- sums -----------------------------------------------------------------------------------
 
-def sum_squares(A):
-    a = A.astype(np.float64)
+def sum_squares(A, i0, i1, j0, j1):
+    a = A[i0:i1, j0:j1].astype(np.float64)
     return float(np.einsum("ij,ij->", a, a))
 
 
-def sum_weighted_squares(A, W):
-    a = A.astype(np.float64)
-    return float(np.einsum("ij,ij,ij->", W, a, a))
+def sum_weighted_squares(A, W, i0, i1, j0, j1):
+    a = A[i0:i1, j0:j1].astype(np.float64)
+    return float(np.einsum("ij,ij,ij->", W[i0:i1, j0:j1], a, a))
 
 
 def squared_error_sums(test, ref):
