@@ -38,11 +38,15 @@ from .simulate import ENERGY_ABSOLUTE_LIMIT, ENERGY_GROWTH_LIMIT
 from .units import EPS0, ETA0
 
 WINDOW_SLACK = 3  # cells: L1 distances between components of two cells differ from the cells' by < 2
+COMPONENTS = ("Ex", "Ey", "Ez", "Hx", "Hy", "Hz")
 FRAMES = 40  # interior frames for the global error
 LATE_STEPS_3D = 4000
 FORMAT_VERSION = 1
 MEMORY_ENTRIES = 4
-PARALLEL_MIN_CELLS = 400_000  # measured: the 85,000-cell demo box runs 5x slower on 2 threads of a busy machine
+# One kernel thread unless asked: on this 2-core machine shared with other work, two
+# threads ran the demo's reference 4x slower than one whenever the other core was busy
+# (see tests/bench/bench_3d.py, which times both).
+DEFAULT_THREADS = 1
 
 
 @dataclass
@@ -92,7 +96,7 @@ def _energy(grid: Grid3D, region=None) -> float:
 
 def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, reference_frames=None,
             keep_frames: bool = False, check_every: int = 0, progress=None, record_probes: bool = True,
-            threads: int | None = None) -> BoxRun:
+            threads: int | None = None, initial: dict | None = None, probe_component: str | None = None) -> BoxRun:
     """Run grid.box for `steps` steps (default box.steps) from zero fields.
 
     window: step only inside the light-cone window (the reference; no energy checks).
@@ -100,14 +104,20 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
     (global error); keep_frames: return this run's interior frames instead.
     check_every: energy record and divergence guard every so many steps (0: none).
     progress(step, total) every ~1 % of the run; return False to cancel (RunCancelled).
+    initial: starting values {"Ex": array, ...} in SI (E in V/m, H in A/m) on the grid's
+    (NX+1, NY+1, NZ+1) arrays, e.g. one cavity mode; the rest start at zero.
+    probe_component: record this component ("Ex" ... "Hz") instead of the source's.
     """
     box = grid.box
     steps = box.steps if steps is None else steps
-    grid.reset()
+    grid.reset()  # a grid is zero when new; touching a large reference's pages would cost time
     Ex, Ey, Ez, Hx, Hy, Hz = grid.fields
-    probe_field = grid.probe_field()
+    for name, values in (initial or {}).items():
+        grid.fields[COMPONENTS.index(name)][...] = values * (ETA0 if name[0] == "H" else 1.0)
+    probe_field = grid.probe_field() if probe_component is None else grid.fields[COMPONENTS.index(probe_component)]
     pn = grid.probe_nodes
     probe_out = np.zeros((steps + 1, len(pn)), dtype=grid.dtype)
+    probe_out[0] = probe_field[pn[:, 0], pn[:, 1], pn[:, 2]]
     si, sj, sk = grid.source_node
     magnetic = box.source_magnetic
     times = (np.arange(steps) + (0.0 if magnetic else 0.5)) * box.dt
@@ -123,8 +133,7 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
     source_off = int(math.ceil(2 * box.pulse.t0 / box.dt))
     report_every = max(1, steps // 100)
     nxp, nyp, nzp = grid.shape
-    if threads is None:
-        threads = numba.config.NUMBA_NUM_THREADS if nxp * nyp * nzp >= PARALLEL_MIN_CELLS else 1
+    threads = DEFAULT_THREADS if threads is None else min(threads, numba.config.NUMBA_NUM_THREADS)
     numba.set_num_threads(threads)  # per calling thread
     cells = 0.0
     t0 = time.perf_counter()
@@ -132,10 +141,17 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
         win = light_cone_window(grid, n, steps) if window else full
         if window:
             cells += kernels3d.window_cells(win, nxp, nyp, nzp)
-        kernels3d.update_h(Ex, Ey, Ez, Hx, Hy, Hz, grid.cdt, *grid.h_args, win)
+        if threads == 1:
+            kernels3d.h_rows(0, nxp, Ex, Ey, Ez, Hx, Hy, Hz, grid.cdt, *grid.h_args, win)
+        else:
+            chunks = kernels3d.row_chunks(win, nxp - 1, threads)
+            kernels3d.h_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, grid.cdt, *grid.h_args, win)
         if magnetic:
             Hz[si, sj, sk] += wave[n]
-        kernels3d.update_e(Ex, Ey, Ez, Hx, Hy, Hz, grid.ca, grid.cb, *grid.e_args, win)
+        if threads == 1:
+            kernels3d.e_rows(0, nxp, Ex, Ey, Ez, Hx, Hy, Hz, grid.ca, grid.cb, *grid.e_args, win)
+        else:
+            kernels3d.e_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, grid.ca, grid.cb, *grid.e_args, win)
         if not magnetic:
             Ez[si, sj, sk] += wave[n]
         if record_probes:
@@ -172,7 +188,8 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
         cells = float(nxp - 1) * (nyp - 1) * (nzp - 1) * steps
     if record_probes and not np.all(np.isfinite(probe_out)):
         raise DivergenceError(steps, "the fields are no longer finite")
-    scale = 1.0 / ETA0 if magnetic else 1.0
+    recorded = probe_component or ("Hz" if magnetic else "Ez")
+    scale = 1.0 / ETA0 if recorded[0] == "H" else 1.0
     probes = {name: probe_out[:, m].astype(float) * scale for m, (name, _) in enumerate(box.probes)}
     return BoxRun(probes=probes, energy_steps=np.asarray(e_steps, int), energy=np.asarray(e_total),
                   interior_energy=np.asarray(e_inside), frame_steps=every * np.arange(1, n_frames + 1),

@@ -122,12 +122,13 @@ def _nearest_cpml_side(s: Scenario):
     return name, distances[name]
 
 
-def box_from_scenario(s: Scenario, half_width: int | None = None) -> Box3D:
+def box_from_scenario(s: Scenario, half_width: int | None = None, lateral: int | None = None) -> Box3D:
     """The 3D confirmation box of a 2D scenario (see the module text).
 
-    half_width: cells from the source to each interior face (default: the
-    source's distance to its nearest CPML face in 2D, kept within
-    MIN_HALF_WIDTH..MAX_HALF_WIDTH).
+    half_width: cells from the source to the measured face and the face
+    opposite (default: the source's distance to its nearest CPML face in 2D,
+    kept within MIN_HALF_WIDTH..MAX_HALF_WIDTH); lateral: cells from the
+    source to the four other faces (default half_width).
     """
     for name in ("left", "right", "bottom", "top"):
         if getattr(s.boundary, name).kind == "periodic":
@@ -136,10 +137,10 @@ def box_from_scenario(s: Scenario, half_width: int | None = None) -> Box3D:
     measured, distance = _nearest_cpml_side(s)
     if half_width is None:
         half_width = min(max(distance, MIN_HALF_WIDTH), MAX_HALF_WIDTH)
-    elif not (isinstance(half_width, int) and MIN_HALF_WIDTH <= half_width <= 200):
-        raise ScenarioError("half_width", half_width, f"a whole number of cells from {MIN_HALF_WIDTH} to 200")
-    h = half_width
-    n = 2 * h
+    lateral = half_width if lateral is None else lateral
+    for name, value in (("half_width", half_width), ("lateral", lateral)):
+        if not (isinstance(value, int) and MIN_HALF_WIDTH <= value <= 200):
+            raise ScenarioError(name, value, f"a whole number of cells from {MIN_HALF_WIDTH} to 200")
     d = (s.dx, s.dy, min(s.dx, s.dy))
     layer = getattr(s.boundary, measured)
     faces = {FACE_OF_SIDE[name]: (getattr(s.boundary, name) if getattr(s.boundary, name).kind == "cpml" else None)
@@ -148,14 +149,17 @@ def box_from_scenario(s: Scenario, half_width: int | None = None) -> Box3D:
     face = FACE_OF_SIDE[measured]
     axis, high = "xyz".index(face[0]), face.endswith("high")
     other = 1 - axis  # the in-plane axis of the 2D scenario
+    half = [lateral] * 3
+    half[axis] = half_width
+    n = [2 * v for v in half]
     other_high = faces[FACES[2 * other + 1]] is not None or faces[FACES[2 * other]] is None
-    near = lambda up: n - FACE_GAP if up else FACE_GAP
-    face_probe = [h, h, h]
-    face_probe[axis] = near(high)
+    near = lambda a, up: n[a] - FACE_GAP if up else FACE_GAP
+    face_probe = list(half)
+    face_probe[axis] = near(axis, high)
     edge_probe = list(face_probe)
-    edge_probe[2] = near(True)
+    edge_probe[2] = near(2, True)
     corner_probe = list(edge_probe)
-    corner_probe[other] = near(other_high)
+    corner_probe[other] = near(other, other_high)
     other_face = FACES[2 * other + (1 if other_high else 0)]
     probes = ((f"face ({face})", tuple(face_probe)), (f"edge ({face}, z_high)", tuple(edge_probe)),
               (f"corner ({face}, {other_face}, z_high)", tuple(corner_probe)))
@@ -171,8 +175,8 @@ def box_from_scenario(s: Scenario, half_width: int | None = None) -> Box3D:
     farthest_echo = 0.0
     for _, p in probes:
         for a in range(3):
-            for image in (-h, n + (n - h)):  # the source mirrored in each face of the axis
-                dist = [(p[b] - h) * d[b] for b in range(3)]
+            for image in (-half[a], 3 * half[a]):  # the source mirrored in each face of the axis
+                dist = [(p[b] - half[b]) * d[b] for b in range(3)]
                 dist[a] = (p[a] - image) * d[a]
                 farthest_echo = max(farthest_echo, math.sqrt(sum(x * x for x in dist)))
     duration = 2 * widths * pulse.tau + (farthest_echo + 2 * deepest) / v
@@ -187,8 +191,8 @@ def box_from_scenario(s: Scenario, half_width: int | None = None) -> Box3D:
                      "of the 2D scenario are not carried over)")
     if any(getattr(s.boundary, k).kind == "wall" for k in FACE_OF_SIDE):
         notes.append("2D wall sides are electric walls in 3D")
-    return Box3D(cells=(n, n, n), d=d, dt=dt, steps=steps, faces=tuple(faces[f] for f in FACES),
-                 source=(h, h, h), pulse=pulse, probes=probes, eps_r=s.eps_r, sigma=s.sigma,
+    return Box3D(cells=tuple(n), d=d, dt=dt, steps=steps, faces=tuple(faces[f] for f in FACES),
+                 source=tuple(half), pulse=pulse, probes=probes, eps_r=s.eps_r, sigma=s.sigma,
                  precision=s.precision, amplitude=s.source.amplitude,
                  source_magnetic=s.polarization == "TEz", measured_face=face,
                  band=(s.source.f_min, s.source.f_max), notes=tuple(notes))
@@ -270,6 +274,7 @@ class Grid3D:
     source_coef: float
     probe_nodes: np.ndarray  # (n_probes, 3) grid indices
     interior: tuple  # (i0, i1, j0, j1, k0, k1): grid cells of the interior nodes 0..n per axis
+    used: bool = False
 
     def probe_field(self):
         Ex, Ey, Ez, Hx, Hy, Hz = self.fields
@@ -282,8 +287,11 @@ class Grid3D:
         return full_window(self.shape)
 
     def reset(self) -> None:
-        for a in self.fields + self.psi:
-            a.fill(0)
+        """Zero fields and psi, unless the grid has not been run yet."""
+        if self.used:
+            for a in self.fields + self.psi:
+                a.fill(0)
+        self.used = True
 
 
 def build_grid3d(box: Box3D) -> Grid3D:
