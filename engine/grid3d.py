@@ -105,8 +105,7 @@ class Box3D:
         data = dict(version=1, cells=self.cells, d=self.d, dt=self.dt, steps=self.steps, source=self.source,
                     pulse=[self.pulse.kind, self.pulse.tau, self.pulse.t0, self.pulse.f_c],
                     probes=[[n, list(p)] for n, p in self.probes], eps_r=self.eps_r, sigma=self.sigma,
-                    precision=self.precision, amplitude=self.amplitude, magnetic=self.source_magnetic,
-                    walls=[f is None for f in self.faces])
+                    precision=self.precision, amplitude=self.amplitude, magnetic=self.source_magnetic)
         text = json.dumps(data, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(text.encode()).hexdigest()
 
