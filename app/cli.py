@@ -456,6 +456,10 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--no-late", action="store_true", help="skip the late-time stability check")
     check.add_argument("--late-steps", type=_ranged(int, 100, 2_000_000, "a whole number of steps from 100 to 2000000"),
                        default=20_000, metavar="N", help="length of the late-time check, steps (default 20000)")
+    check.add_argument("--3d", dest="three_d", action="store_true",
+                       help="confirm the layer on a small 3D box derived from the scenario (same cell, band, "
+                            "host and layers; probes near a face centre, an edge and a corner); the late-time "
+                            "check then runs 4000 steps unless --late-steps says otherwise")
 
     sweep = commands.add_parser(
         "sweep", formatter_class=formatter,
@@ -606,6 +610,10 @@ def _run_demo(path: str | None) -> int:
 def _run_check(args) -> int:
     from quietlayer.engine.errors import DivergenceError
     from quietlayer.engine.measure import measure
+
+    if args.three_d:
+        from .confirm3d import check_3d
+        return check_3d(args.scenario, args)
 
     s = _load(args.scenario)
     if not s.probes:

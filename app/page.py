@@ -35,6 +35,7 @@ from quietlayer.engine.sweep import (LAYER_PARAMETERS, Axis, LocalPool, SweepTab
                                      parse_vary, run_sweep)
 
 from . import CAUTION, plots
+from .confirm3d_view import Confirm3DView
 from .units import format_frequency, format_length
 
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
@@ -113,6 +114,7 @@ class QuietlayerPage:
         self._set_widgets_from(self.base)
         self._make_plots()
         self.sweep = SweepView(self)
+        self.confirm3d = Confirm3DView(self._current, self._call_soon, lambda: self.result)
         self._layout()
         self._watch()
         self._show_headline()  # "computing" until the first result arrives
@@ -317,7 +319,8 @@ class QuietlayerPage:
         profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(fields, curves, profile_row, sizing_mode="stretch_width")),
-                            ("Sweep", self.sweep.panel), dynamic=False, sizing_mode="stretch_width")
+                            ("Sweep", self.sweep.panel), ("Confirm in 3D", self.confirm3d.panel),
+                            dynamic=False, sizing_mode="stretch_width")
         self.main = pn.Column(top, self.message, self.headline, self.status, self.tabs, caution,
                               sizing_mode="stretch_width", stylesheets=[STYLE])
         self.root = pn.Row(self.controls, self.main, sizing_mode="stretch_width")
@@ -494,6 +497,7 @@ class QuietlayerPage:
         self.last_good = s
         self.spinner.value = self.running
         self._show_result()
+        self.confirm3d.scenario_changed()
         self._start_late_check(s, generation)
         if self._figures_need_rebuild():
             self._build_figures()
@@ -608,6 +612,7 @@ class QuietlayerPage:
         with self._lock:
             self.generation += 1  # a late-time check still running sees it and stops
         self.sweep.close()
+        self.confirm3d.close()
         self.measure_pool.shutdown(wait=False, cancel_futures=True)
         self.late_pool.shutdown(wait=False, cancel_futures=True)
 
