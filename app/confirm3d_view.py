@@ -20,6 +20,7 @@ import time
 from concurrent.futures import ThreadPoolExecutor
 
 import holoviews as hv
+import holoviews.plotting.bokeh  # noqa: F401  (the figure options need the Bokeh renderer)
 import panel as pn
 
 from quietlayer.engine.confirm3d import confirm_3d

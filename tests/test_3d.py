@@ -309,3 +309,76 @@ def test_tez_runs_a_magnetic_dipole_and_records_hz():
     c = confirm_3d(s, late_steps=0, cache=Reference3DCache(use_disk=False))
     assert c.box.source_magnetic and c.box.quantity == "Hz (A/m)"
     assert all(-150 < v < -20 for v in c.peak_db.values())
+
+
+# --- the command line and the page's panel ----------------------------------------
+
+def _scenario_file(tmp_path, s: Scenario):
+    path = tmp_path / "cell.toml"
+    path.write_text(s.to_toml(), "utf-8")
+    return str(path)
+
+
+def test_check_3d_json_scores_exit_codes(tmp_path, monkeypatch, capsys):
+    import json
+
+    from quietlayer.app.cli import main
+    from quietlayer.engine.confirm3d import DEFAULT_CACHE
+    monkeypatch.setenv("QUIETLAYER_CACHE_DIR", str(tmp_path / "cache"))
+    DEFAULT_CACHE.clear_memory()
+    path = _scenario_file(tmp_path, small_scenario())
+    assert main(["check", path, "--3d", "--json", "--late-steps", "300", "--budget", "-20"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["mode"] == "3d" and data["passed"] and data["late_time"]["steps"] == 300
+    assert data["late_time"]["status"] == "stable"
+    assert len(data["probes"]) == 3 and all(p["peak_db"] < -20 for p in data["probes"].values())
+    assert data["worst_peak_db"] == max(p["peak_db"] for p in data["probes"].values())
+    assert data["global_db"] < -20 and data["box"]["interior_cells"] == [20, 20, 20]
+    assert data["timing_s"]["reference_from"] == "computed"
+    # a budget below the worst peak error fails (exit 1); the reference now comes from disk
+    DEFAULT_CACHE.clear_memory()
+    assert main(["check", path, "--3d", "--json", "--no-late", "--budget", "-150"]) == 1
+    data = json.loads(capsys.readouterr().out)
+    assert not data["passed"] and "above the budget" in data["reasons"][0] and data["late_time"] is None
+    assert data["timing_s"]["reference_from"] == "disk"
+
+
+def test_check_3d_text_and_bad_input(tmp_path, monkeypatch, capsys):
+    from quietlayer.app.cli import main
+    monkeypatch.setenv("QUIETLAYER_CACHE_DIR", str(tmp_path / "cache"))
+    assert main(["check", _scenario_file(tmp_path, small_scenario()), "--3d", "--no-late"]) == 0
+    out = capsys.readouterr().out
+    assert "confirmation in 3D" in out and "20 x 20 x 20 interior cells" in out and "PASS" in out
+    assert "certifies no RF-exposure" in out
+    periodic = small_scenario(boundary=Boundary(bottom=Side(kind="periodic"), top=Side(kind="periodic")))
+    assert main(["check", _scenario_file(tmp_path, periodic), "--3d"]) == 2
+    assert "layer.bottom.kind" in capsys.readouterr().err
+
+
+def test_page_panel_runs_cancels_and_marks_old_scores():
+    from quietlayer.app.confirm3d_view import Confirm3DView
+    current = {"s": small_scenario()}
+    view = Confirm3DView(lambda: current["s"], lambda function, *args: function(*args))
+    assert "20 x 20 x 20 interior cells" in view.box_line.object
+    try:
+        view.start()
+        view.pool.submit(lambda: None).result(timeout=300)  # the run is done
+        assert view.result is not None and view.w_run.disabled is False
+        assert "Done in" in view.status.object and "-" in view.scores.object
+        assert "earlier setting" not in view.scores.object
+        current["s"] = small_scenario(courant=0.9)
+        view.scenario_changed()
+        assert "earlier setting" in view.scores.object
+        # cancel: the worker stops at its next progress report
+        view.start()
+        view.cancel()
+        view.pool.submit(lambda: None).result(timeout=300)
+        assert view.status.object.startswith("Cancelled") or "Done" in view.status.object
+    finally:
+        view.close()
+
+
+def test_a_pulse_too_long_for_a_3d_check_is_refused_with_the_reason():
+    fine = small_scenario(source=Source(x=50, y=60, f_max=2e9))  # 150 cells per wavelength
+    with pytest.raises(ScenarioError, match=r"source\.f_max.*cells per wavelength"):
+        box_from_scenario(fine)
