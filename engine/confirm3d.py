@@ -85,6 +85,26 @@ def light_cone_window(grid: Grid3D, step: int, steps: int, slack: int = WINDOW_S
                      si, sj, sk, r_src, i0, i1, j0, j1, k0, k1, r_box], dtype=np.int64)
 
 
+def _half_step_h(grid: Grid3D, win, threads: int, chunks) -> None:
+    """H from n - 1/2 to n + 1/2: column loops inside a window, else whole planes."""
+    if win is None:
+        args = (*grid.flat_fields, grid.cdt, *grid.h_plane_args)
+        kernels3d.h_planes(0, grid.shape[0], *args) if threads == 1 else kernels3d.h_plane_chunks(chunks, *args)
+    else:
+        args = (*grid.fields, grid.cdt, *grid.h_args, win)
+        kernels3d.h_rows(0, grid.shape[0], *args) if threads == 1 else kernels3d.h_chunks(chunks, *args)
+
+
+def _half_step_e(grid: Grid3D, win, threads: int, chunks) -> None:
+    """E from n to n + 1: column loops inside a window, else whole planes."""
+    if win is None:
+        args = (*grid.flat_fields, grid.ca, grid.cb, *grid.e_plane_args)
+        kernels3d.e_planes(0, grid.shape[0], *args) if threads == 1 else kernels3d.e_plane_chunks(chunks, *args)
+    else:
+        args = (*grid.fields, grid.ca, grid.cb, *grid.e_args, win)
+        kernels3d.e_rows(0, grid.shape[0], *args) if threads == 1 else kernels3d.e_chunks(chunks, *args)
+
+
 def _energy(grid: Grid3D, region=None) -> float:
     """Field energy (J) in the whole grid or in region (i0, i1, j0, j1, k0, k1)."""
     i0, i1, j0, j1, k0, k1 = region if region is not None else (0, grid.shape[0], 0, grid.shape[1], 0,
@@ -136,22 +156,17 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
     threads = DEFAULT_THREADS if threads is None else min(threads, numba.config.NUMBA_NUM_THREADS)
     numba.set_num_threads(threads)  # per calling thread
     cells = 0.0
+    chunks = kernels3d.row_chunks(full, nxp - 1, threads)
     t0 = time.perf_counter()
     for n in range(steps):
-        win = light_cone_window(grid, n, steps) if window else full
         if window:
+            win = light_cone_window(grid, n, steps)
             cells += kernels3d.window_cells(win, nxp, nyp, nzp)
-        if threads == 1:
-            kernels3d.h_rows(0, nxp, Ex, Ey, Ez, Hx, Hy, Hz, grid.cdt, *grid.h_args, win)
-        else:
             chunks = kernels3d.row_chunks(win, nxp - 1, threads)
-            kernels3d.h_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, grid.cdt, *grid.h_args, win)
+        _half_step_h(grid, win if window else None, threads, chunks)
         if magnetic:
             Hz[si, sj, sk] += wave[n]
-        if threads == 1:
-            kernels3d.e_rows(0, nxp, Ex, Ey, Ez, Hx, Hy, Hz, grid.ca, grid.cb, *grid.e_args, win)
-        else:
-            kernels3d.e_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, grid.ca, grid.cb, *grid.e_args, win)
+        _half_step_e(grid, win if window else None, threads, chunks)
         if not magnetic:
             Ez[si, sj, sk] += wave[n]
         if record_probes:

@@ -270,8 +270,11 @@ class Grid3D:
     ca: float
     cb: float
     cdt: float
-    h_args: tuple  # everything update_h takes after the fields and c0 dt, but the window
+    h_args: tuple  # everything h_rows takes after the fields and c0 dt, but the window
     e_args: tuple
+    flat_fields: tuple  # the fields as (NX+1, (NY+1)(NZ+1)) views, for the whole-grid kernels
+    h_plane_args: tuple  # everything h_planes takes after the fields and c0 dt
+    e_plane_args: tuple
     psi: tuple
     source_node: tuple  # grid indices of the driven component
     source_coef: float
@@ -327,6 +330,8 @@ def build_grid3d(box: Box3D) -> Grid3D:
     e_args = (cast(x.g_node), cast(y.g_node), cast(z.g_node), x.map_node, y.map_node,
               np.int64(z.z_node[0]), np.int64(z.z_node[1]), cast(x.b_node), cast(x.c_node),
               cast(y.b_node), cast(y.c_node), cast(z.b_node), cast(z.c_node)) + psi_e
+    h_plane_args, e_plane_args = _plane_args(box, ax, shape, cast, psi_h, psi_e)
+    flat_fields = tuple(a.reshape(shape[0], -1) for a in fields)
     offset = box.offset
     src = tuple(offset[a] + box.source[a] for a in range(3))
     dx, dy, dz = box.d
@@ -336,6 +341,52 @@ def build_grid3d(box: Box3D) -> Grid3D:
     source_coef = (cdt if box.source_magnetic else cb) * drive
     probe_nodes = np.array([[offset[a] + p[a] for a in range(3)] for _, p in box.probes], dtype=np.int64)
     return Grid3D(box=box, dtype=dtype, shape=shape, offset=offset, fields=fields, ca=scalar(ca), cb=scalar(cb),
-                  cdt=scalar(cdt), h_args=h_args, e_args=e_args, psi=psi_h + psi_e, source_node=src,
+                  cdt=scalar(cdt), h_args=h_args, e_args=e_args, flat_fields=flat_fields,
+                  h_plane_args=h_plane_args, e_plane_args=e_plane_args, psi=psi_h + psi_e, source_node=src,
                   source_coef=float(source_coef), probe_nodes=probe_nodes.reshape(-1, 3),
                   interior=tuple(v for a in range(3) for v in (offset[a], offset[a] + box.cells[a] + 1)))
+
+
+def _runs(row_map: np.ndarray) -> np.ndarray:
+    """(first row, end row, first psi row) of each contiguous run of slab rows."""
+    runs = []
+    for j, r in enumerate(row_map):
+        if r < 0:
+            continue
+        if runs and runs[-1][1] == j:
+            runs[-1][1] = j + 1
+        else:
+            runs.append([j, j + 1, int(r)])
+    return np.array(runs, dtype=np.int64).reshape(-1, 3)
+
+
+def _plane_args(box: Box3D, ax, shape, cast, psi_h, psi_e):
+    """Arguments of the whole-grid kernels (kernels3d.h_planes, e_planes): grading
+    per (j, k), zero where a component is not updated; per-row b and c of the
+    y-slabs; psi as flat views."""
+    x, y, z = ax
+    nxp, nyp, nzp = shape
+    ny, nz = nyp - 1, nzp - 1
+    j = np.arange(nyp)[:, None]
+    k = np.arange(nzp)[None, :]
+    pad = lambda a, n: np.concatenate([a, np.zeros(n - a.size)])
+    flat = lambda a: cast(np.broadcast_to(a, (nyp, nzp)).reshape(-1))
+    gyh, gzh = pad(y.g_half, nyp)[:, None], pad(z.g_half, nzp)[None, :]
+    gyn, gzn = y.g_node[:, None], z.g_node[None, :]
+    h_mask = (j < ny) & (k < nz)  # H: normal components on the walls stay zero
+    ex_mask = (j >= 1) & (j < ny) & (k >= 1) & (k < nz)
+    ey_mask = (j < ny) & (k >= 1) & (k < nz)
+    ez_mask = (j >= 1) & (j < ny) & (k < nz)
+    h_planes = (flat(gyh * h_mask), flat(gzh * h_mask), flat(h_mask * 1.0))
+    e_planes = (flat(gyn * ex_mask), flat(gzn * ex_mask), flat(ey_mask * 1.0), flat(gzn * ey_mask),
+                flat(ez_mask * 1.0), flat(gyn * ez_mask))
+    by_h, cy_h = flat(pad(y.b_half, nyp)[:, None]), flat(pad(y.c_half, nyp)[:, None])
+    by_e, cy_e = flat(y.b_node[:, None]), flat(y.c_node[:, None])
+    flat_psi = lambda arrays: tuple(a.reshape(a.shape[0], int(np.prod(a.shape[1:]))) for a in arrays)
+    h_args = (cast(x.g_half), h_planes, x.map_half, _runs(y.map_half), np.int64(z.z_half[0]),
+              np.int64(z.z_half[1]), cast(x.b_half), cast(x.c_half), by_h, cy_h,
+              cast(z.b_half), cast(z.c_half)) + flat_psi(psi_h)
+    e_args = (cast(x.g_node), e_planes, x.map_node, _runs(y.map_node), np.int64(z.z_node[0]),
+              np.int64(z.z_node[1]), cast(x.b_node), cast(x.c_node), by_e, cy_e,
+              cast(z.b_node), cast(z.c_node)) + flat_psi(psi_e)
+    return h_args, e_args

@@ -228,6 +228,134 @@ def e_rows(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
                                   Hx[i, j, a:b], Hx[i, j, a - 1:b - 1], cb)
 
 
+# --- the whole grid at once: each i-plane as one long loop ------------------------
+# Without a window every (j, k) of a plane is updated, so a plane is one loop over
+# m = j (NZ+1) + k instead of NY short column loops.  The neighbours in j and k are
+# at m + (NZ+1) and m + 1.  Grading planes carry 1/(kappa d) per m and are zero
+# where a component is not updated (walls, normal H, padding), which leaves those
+# entries exactly zero; the arithmetic is otherwise term for term that of the
+# column loops, so both give bitwise the same fields.
+
+@njit(**_INLINE)
+def curl_h_plane(f, coef, a1, a0, ga, b1, b0, gb):
+    """f -= coef ((a1 - a0) ga[m] - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] -= coef * ((a1[m] - a0[m]) * ga[m] - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_h_masked(f, coef, a1, a0, ga, mask, b1, b0, gb):
+    """f -= coef ((a1 - a0) (ga mask[m]) - (b1 - b0) gb[m]) (ga constant on the plane)."""
+    for m in range(f.size):
+        f[m] -= coef * ((a1[m] - a0[m]) * (ga * mask[m]) - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_e_plane(f, ca, cb, a1, a0, ga, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) ga[m] - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] = ca * f[m] + cb * ((a1[m] - a0[m]) * ga[m] - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_e_masked(f, ca, cb, a1, a0, ga, mask, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) (ga mask[m]) - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] = ca * f[m] + cb * ((a1[m] - a0[m]) * (ga * mask[m]) - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_ROWS)
+def h_planes(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, planes, xmap, y_runs, z_lo, z_hi,
+             bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z):
+    """Planes i_first..i_last-1 of the whole-grid H update.  Fields are (NX+1, (NY+1)(NZ+1))
+    views; planes = (gy, gz, mask) per m; by, cy per m; y_runs rows (j0, j1, first psi row);
+    z-psi as (NX+1, (NY+1) n_z) views."""
+    nxp, size = Ex.shape
+    s = bz.size + 1  # NZ + 1
+    ny = size // s - 1
+    nz = s - 1
+    end = ny * s
+    nzs = hx_z.shape[1] // (ny + 1)
+    gy, gz, mask = planes[0][:end], planes[1][:end], planes[2][:end]
+    for i in range(i_first, min(i_last, nxp - 1)):
+        gx = gxh[i]
+        ex, ex_k, ex_j = Ex[i, :end], Ex[i, 1:end + 1], Ex[i, s:end + s]
+        ey, ey_k, ey_i = Ey[i, :end], Ey[i, 1:end + 1], Ey[i + 1, :end]
+        ez, ez_j, ez_i = Ez[i, :end], Ez[i, s:end + s], Ez[i + 1, :end]
+        hx, hy, hz = Hx[i, :end], Hy[i, :end], Hz[i, :end]
+        curl_h_plane(hx, cdt, ez_j, ez, gy, ey_k, ey, gz)
+        curl_h_masked(hy, -cdt, ez_i, ez, gx, mask, ex_k, ex, gz)
+        curl_h_masked(hz, cdt, ey_i, ey, gx, mask, ex_j, ex, gy)
+        xi = xmap[i]
+        if xi >= 0:
+            psi_column(hy_x[xi, :end], hy, bx[i], cx[i], ez_i, ez, cdt)
+            psi_column(hz_x[xi, :end], hz, bx[i], cx[i], ey_i, ey, -cdt)
+        for r in range(y_runs.shape[0]):
+            a, b, q = y_runs[r, 0] * s, y_runs[r, 1] * s, y_runs[r, 2] * s
+            n = b - a
+            psi_z(hx_y[i, q:q + n], Hx[i, a:b], by[a:b], cy[a:b], Ez[i, a + s:b + s], Ez[i, a:b], -cdt)
+            psi_z(hz_y[i, q:q + n], Hz[i, a:b], by[a:b], cy[a:b], Ex[i, a + s:b + s], Ex[i, a:b], cdt)
+        if z_lo > 0 or z_hi < nz:
+            for j in range(ny):
+                o = j * s
+                w = j * nzs
+                for a, b, q in ((0, z_lo, 0), (z_hi, nz, z_hi - z_lo)):
+                    if a < b:
+                        psi_z(hx_z[i, w + a - q:w + b - q], Hx[i, o + a:o + b], bz[a:b], cz[a:b],
+                              Ey[i, o + a + 1:o + b + 1], Ey[i, o + a:o + b], cdt)
+                        psi_z(hy_z[i, w + a - q:w + b - q], Hy[i, o + a:o + b], bz[a:b], cz[a:b],
+                              Ex[i, o + a + 1:o + b + 1], Ex[i, o + a:o + b], -cdt)
+
+
+@njit(**_ROWS)
+def e_planes(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, planes, xmap, y_runs, z_lo, z_hi,
+             bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z):
+    """Planes i_first..i_last-1 of the whole-grid E update (see h_planes);
+    planes = (gy_ex, gz_ex, mask_ey, gz_ey, mask_ez, gy_ez)."""
+    nxp, size = Ex.shape
+    s = bz.size  # NZ + 1 (nodes)
+    ny = size // s - 1
+    nz = s - 1
+    end = ny * s
+    nzs = ex_z.shape[1] // (ny + 1)
+    gy_ex, gz_ex = planes[0][s:end], planes[1][s:end]
+    mask_ey, gz_ey = planes[2][1:end], planes[3][1:end]
+    mask_ez, gy_ez = planes[4][s:end], planes[5][s:end]
+    for i in range(i_first, min(i_last, nxp - 1)):
+        gx = gxn[i]
+        hz, hz_j = Hz[i, s:end], Hz[i, :end - s]
+        curl_e_plane(Ex[i, s:end], ca, cb, hz, hz_j, gy_ex, Hy[i, s:end], Hy[i, s - 1:end - 1], gz_ex)
+        if i >= 1:
+            ey = Ey[i, 1:end]
+            hz1, hz_i = Hz[i, 1:end], Hz[i - 1, 1:end]
+            curl_e_masked(ey, ca, -cb, hz1, hz_i, gx, mask_ey, Hx[i, 1:end], Hx[i, :end - 1], gz_ey)
+            ez = Ez[i, s:end]
+            hy, hy_i = Hy[i, s:end], Hy[i - 1, s:end]
+            curl_e_masked(ez, ca, cb, hy, hy_i, gx, mask_ez, Hx[i, s:end], Hx[i, :end - s], gy_ez)
+            xi = xmap[i]
+            if xi >= 0:
+                psi_column(ey_x[xi, 1:end], ey, bx[i], cx[i], hz1, hz_i, -cb)
+                psi_column(ez_x[xi, s:end], ez, bx[i], cx[i], hy, hy_i, cb)
+        for r in range(y_runs.shape[0]):
+            a, b, q = y_runs[r, 0] * s, y_runs[r, 1] * s, y_runs[r, 2] * s
+            n = b - a
+            psi_z(ex_y[i, q:q + n], Ex[i, a:b], by[a:b], cy[a:b], Hz[i, a:b], Hz[i, a - s:b - s], cb)
+            if i >= 1:
+                psi_z(ez_y[i, q:q + n], Ez[i, a:b], by[a:b], cy[a:b], Hx[i, a:b], Hx[i, a - s:b - s], -cb)
+        if z_lo > 0 or z_hi < nz:
+            for j in range(ny):
+                o = j * s
+                w = j * nzs
+                for a, b, q in ((1, z_lo, 0), (z_hi, nz, z_hi - z_lo)):
+                    if a < b:
+                        if j >= 1:
+                            psi_z(ex_z[i, w + a - q:w + b - q], Ex[i, o + a:o + b], bz[a:b], cz[a:b],
+                                  Hy[i, o + a:o + b], Hy[i, o + a - 1:o + b - 1], -cb)
+                        if i >= 1:
+                            psi_z(ey_z[i, w + a - q:w + b - q], Ey[i, o + a:o + b], bz[a:b], cz[a:b],
+                                  Hx[i, o + a:o + b], Hx[i, o + a - 1:o + b - 1], cb)
+
+
 @njit(**_PARALLEL)
 def h_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, gyh, gzh,
              xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz,
@@ -246,6 +374,26 @@ def e_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
     for c in prange(chunks.size - 1):
         e_rows(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
                xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z, win)
+
+
+@njit(**_PARALLEL)
+def h_plane_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, planes, xmap, y_runs, z_lo, z_hi,
+                   bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z):
+    """h_planes over row chunks, one per thread."""
+    g0, g1, g2 = planes
+    for c in prange(chunks.size - 1):
+        h_planes(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, (g0, g1, g2), xmap, y_runs,
+                 z_lo, z_hi, bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z)
+
+
+@njit(**_PARALLEL)
+def e_plane_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, planes, xmap, y_runs, z_lo, z_hi,
+                   bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z):
+    """e_planes over row chunks, one per thread."""
+    g0, g1, g2, g3, g4, g5 = planes
+    for c in prange(chunks.size - 1):
+        e_planes(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, (g0, g1, g2, g3, g4, g5), xmap,
+                 y_runs, z_lo, z_hi, bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z)
 
 
 def row_chunks(win, n_rows: int, threads: int) -> np.ndarray:
