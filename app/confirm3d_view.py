@@ -66,7 +66,8 @@ class Confirm3DView:
         self.box_line = pn.pane.Markdown("", sizing_mode="stretch_width", styles={"font-size": "0.85em"},
                                          css_classes=["ql-3d-box"])
         self.scores = pn.pane.HTML("", sizing_mode="stretch_width", css_classes=["ql-3d-scores"])
-        self.plot = pn.pane.HoloViews(self._spectrum(None), sizing_mode="stretch_width")
+        # the figure is made with the first result: an empty one would only slow the page's first load
+        self.plot = pn.Column(sizing_mode="stretch_width")
         self.w_run.on_click(self.start)
         self.w_cancel.on_click(self.cancel)
         controls = pn.Column(pn.Row(self.w_run, self.w_cancel), self.progress, self.status, self.box_line, width=330)
@@ -151,7 +152,11 @@ class Confirm3DView:
             source = "cached" if c.reference_source != "computed" else f"{c.reference_s:.1f} s"
             self.status.object = (f"Done in {c.elapsed_s:.1f} s (reference {source}, test {c.test_s:.1f} s, "
                                   f"late-time {c.late_s:.1f} s).")
-            self.plot.object = self._spectrum(c)
+            figure = self._spectrum(c)
+            if self.plot.objects:
+                self.plot.objects[0].object = figure
+            else:
+                self.plot.objects = [pn.pane.HoloViews(figure, sizing_mode="stretch_width")]
         else:
             self.progress.value = 0
             self.status.object = message
@@ -209,19 +214,14 @@ class Confirm3DView:
     @staticmethod
     def _spectrum(c):
         """Reflection spectra at the face, edge and corner probes."""
-        if c is None or c.freqs is None:
-            scale, unit = 1e9, "GHz"
-        else:
-            scale, unit = frequency_unit(c.box.band[1])
+        scale, unit = frequency_unit(c.box.band[1])
         kdim, vdim = f"frequency ({unit})", "reflection (dB)"
         layers = []
-        names = [n for n, _ in c.box.probes] if c is not None else ["face", "edge", "corner"]
-        for k, name in enumerate(names):
-            have = c is not None and name in c.spectra
+        for k, (name, _) in enumerate(c.box.probes):
+            have = c.freqs is not None and name in c.spectra
             x = c.freqs / scale if have else []
             y = to_db(c.spectra[name]) if have else []
-            label = name.split(" (")[0]
-            layers.append(hv.Curve((x, y), kdims=[kdim], vdims=[vdim], label=label).opts(
+            layers.append(hv.Curve((x, y), kdims=[kdim], vdims=[vdim], label=name.split(" (")[0]).opts(
                 color=PALETTE[k], line_width=2))
         return hv.Overlay(layers).opts(title="3D reflection spectrum: face, edge, corner", responsive=True,
                                        height=270, show_grid=True, legend_position="right", tools=["hover"],

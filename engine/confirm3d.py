@@ -12,8 +12,9 @@ distance steps - n (+ slack) of the interior can still reach a probe or an
 interior node before the end.  Every cell the window reads is either inside
 the previous step's window (and exact by induction) or still exactly zero,
 so the interior values are bitwise those of a full reference with far walls
-(a test checks this).  The work falls from ~steps^4 / 2 cell updates to about
-a third of that; the reference is cached in memory and on disk.
+(a test checks this).  For the demo box that is 3.9e8 cell updates instead of
+the full grid's 7.6e9 (304^3 cells x 271 steps).  The reference is cached in
+memory and on disk.
 """
 
 from __future__ import annotations

@@ -364,7 +364,7 @@ def test_page_panel_runs_cancels_and_marks_old_scores():
         view.start()
         view.pool.submit(lambda: None).result(timeout=300)  # the run is done
         assert view.result is not None and view.w_run.disabled is False
-        assert "Done in" in view.status.object and "-" in view.scores.object
+        assert "Done in" in view.status.object and "-" in view.scores.object and len(view.plot.objects) == 1
         assert "earlier setting" not in view.scores.object
         current["s"] = small_scenario(courant=0.9)
         view.scenario_changed()
