@@ -36,6 +36,7 @@ from quietlayer.engine.defaults import angle_probes
 from quietlayer.engine.measure import measure, late_time_check
 
 from . import CAUTION
+from .confirm3d_view import Confirm3DView
 from .figures import KEYS as FIGURES, LiveFigures, best_frame, finite_or_dash
 from .sweep_view import SweepView
 from .units import format_frequency, format_length, snap
@@ -113,6 +114,7 @@ class QuietlayerPage:
         self._set_widgets_from(self.base)
         self._make_plots()
         self.sweep = SweepView(self)
+        self.confirm3d = Confirm3DView(self._current, self._call_soon, lambda: self.result)
         self._layout()
         self._watch()
         self._show_headline()  # "computing" until the first result arrives
@@ -293,7 +295,8 @@ class QuietlayerPage:
         profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(fields, curves, profile_row, sizing_mode="stretch_width")),
-                            ("Sweep", self.sweep.panel), dynamic=False, sizing_mode="stretch_width")
+                            ("Sweep", self.sweep.panel), ("Confirm in 3D", self.confirm3d.panel),
+                            dynamic=False, sizing_mode="stretch_width")
         self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, self.tabs, caution,
                               sizing_mode="stretch_width", stylesheets=[STYLE])
         self.root = pn.Row(self.controls, self.main, sizing_mode="stretch_width")
@@ -504,6 +507,7 @@ class QuietlayerPage:
         self.complete = full
         self._show_headline()
         if full:
+            self.confirm3d.scenario_changed()
             self._start_late_check(s, generation)
             self._call_soon(self._show_figures, generation, delay_ms=HEADLINE_LEAD_MS)
         else:
@@ -646,6 +650,7 @@ class QuietlayerPage:
         with self._lock:
             self.generation += 1  # a late-time check still running sees it and stops
         self.sweep.close()
+        self.confirm3d.close()
         self.measure_pool.shutdown(wait=False, cancel_futures=True)
         self.late_pool.shutdown(wait=False, cancel_futures=True)
 

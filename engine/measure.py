@@ -144,20 +144,26 @@ def late_time_check(s: Scenario, steps: int = LATE_STEPS, progress=None) -> Late
         return LateTime(status="diverged", steps=steps, growth_db_per_1000=math.inf, final_db=math.inf,
                         energy_steps=np.zeros(0, int), interior_energy=np.zeros(0), layer_energy=np.zeros(0),
                         message=str(exc))
-    total = r.energy
+    return energy_trend(steps, r.energy_steps, r.energy, r.interior_energy)
+
+
+def energy_trend(steps: int, energy_steps, total, interior) -> LateTime:
+    """The late-time verdict from a long run's energy record: the slope of the
+    energy (dB) over the last half of the run, 'growing' above GROWTH_LIMIT_DB
+    per 1000 steps."""
     peak = total.max() if total.size else 0.0
-    half = r.energy_steps >= steps // 2
+    half = energy_steps >= steps // 2
     level = 10 * np.log10(np.maximum(total, 1e-300 * max(peak, 1e-300)) / max(peak, 1e-300))
     if half.sum() >= 2:
-        slope = np.polyfit(r.energy_steps[half], level[half], 1)[0] * 1000.0
+        slope = np.polyfit(energy_steps[half], level[half], 1)[0] * 1000.0
     else:
         slope = 0.0
     status = "growing" if slope > GROWTH_LIMIT_DB else "stable"
     message = (f"energy grows {slope:.2g} dB per 1000 steps late in the run" if status == "growing"
                else f"energy falls to {level[-1]:.0f} dB of its peak and stays there")
     return LateTime(status=status, steps=steps, growth_db_per_1000=float(slope), final_db=float(level[-1]),
-                    energy_steps=r.energy_steps, interior_energy=r.interior_energy,
-                    layer_energy=np.maximum(total - r.interior_energy, 0.0), message=message)
+                    energy_steps=energy_steps, interior_energy=interior,
+                    layer_energy=np.maximum(total - interior, 0.0), message=message)
 
 
 def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: ReferenceCache | None = None,

@@ -38,12 +38,20 @@ def add_parser(commands):
     check.add_argument("--no-late", action="store_true", help="skip the late-time stability check")
     check.add_argument("--late-steps", type=ranged(int, 100, 2_000_000, "a whole number of steps from 100 to 2000000"),
                        default=20_000, metavar="N", help="length of the late-time check, steps (default 20000)")
+    check.add_argument("--3d", dest="three_d", action="store_true",
+                       help="confirm the layer on a small 3D box derived from the scenario (same cell, band, "
+                            "host and layers; probes near a face centre, an edge and a corner); the late-time "
+                            "check then runs 4000 steps unless --late-steps says otherwise")
     return check
 
 
 def run(args) -> int:
     from quietlayer.engine.errors import DivergenceError
     from quietlayer.engine.measure import measure
+
+    if args.three_d:
+        from ..confirm3d import check_3d
+        return check_3d(args.scenario, args)
 
     s = load(args.scenario, late_steps=0 if args.no_late else args.late_steps)
     if not s.probes:

@@ -1,0 +1,441 @@
+"""numba update loops of the 3D Yee scheme with a CFS-CPML on six faces.
+
+Field layout (cell (i, j, k) of the grid): Ex at (i+1/2, j, k), Ey at
+(i, j+1/2, k), Ez at (i, j, k+1/2), Hx at (i, j+1/2, k+1/2), Hy at
+(i+1/2, j, k+1/2), Hz at (i+1/2, j+1/2, k).  All six arrays have the shape
+(NX+1, NY+1, NZ+1), so one index serves all; the entries beyond a
+component's own range stay zero.  H is stored as eta0 H, so vacuum uses the
+factor c0 dt for both halves of a step, as in the 2D engine.  The outer faces
+are electric walls: tangential E on them is never updated (stays zero), and
+the normal H on them then stays zero as well, so it is not updated either.
+
+g* are 1 / (kappa d) along each axis at nodes (n) and half nodes (h).  The
+CPML's psi arrays exist only in the layer slabs: an x-slab is rows of i
+mapped by xmap (-1 outside the slabs) across all j and k, a y-slab likewise
+by ymap, a z-slab the k ranges [0, z_lo) and [z_hi, NZ) (stored as k and
+k - z_hi + z_lo).  Edges and corners lie in two or three slabs and carry
+both or all three psi terms.  b, c are full-length arrays along the axis
+(c already divided by the cell size), zero outside the slabs.
+
+The window (an int64 array, see `full_window` and confirm3d) limits each
+(i, j) column to one k range: the cells within L1 distance r_src of the
+source node and within L1 distance r_box of a target box.  A full window
+covers every cell.  The reference run uses it to update only the cells the
+source can have reached and from which the probes can still be reached.
+"""
+
+import numpy as np
+from numba import njit, prange
+
+_PARALLEL = dict(cache=True, nogil=True, parallel=True, error_model="numpy")
+# The row sweeps only slice arrays their caller owns: without reference counting
+# on the many short column slices they run several times faster (short columns
+# near the light cone's surface are mostly overhead otherwise).
+_ROWS = dict(cache=True, nogil=True, error_model="numpy", _nrt=False)
+_SERIAL = dict(cache=True, nogil=True, error_model="numpy")
+_INLINE = dict(cache=True, nogil=True, error_model="numpy", inline="always")
+
+WINDOW_SIZE = 15
+UNBOUNDED = 1 << 40
+
+
+def full_window(shape) -> np.ndarray:
+    """A window that covers every cell of a grid of this (NX+1, NY+1, NZ+1) shape."""
+    nxp, nyp, nzp = shape
+    return np.array([0, nxp, 0, nyp, 0, 0, 0, UNBOUNDED, 0, nxp, 0, nyp, 0, nzp, UNBOUNDED], dtype=np.int64)
+
+
+@njit(**_INLINE)
+def _gap(v, lo, hi):
+    """Distance of v from the range [lo, hi)."""
+    if v < lo:
+        return lo - v
+    if v >= hi:
+        return v - hi + 1
+    return 0
+
+
+@njit(**_INLINE)
+def column_range(win, i, j):
+    """k range [k0, k1) of column (i, j) inside the window (empty when k0 >= k1).
+
+    win = (i_lo, i_hi, j_lo, j_hi, si, sj, sk, r_src, bi0, bi1, bj0, bj1, bk0, bk1, r_box)."""
+    rs = win[7] - abs(i - win[4]) - abs(j - win[5])
+    rb = win[14] - _gap(i, win[8], win[9]) - _gap(j, win[10], win[11])
+    if rs < 0 or rb < 0:
+        return 0, 0
+    k0 = max(win[6] - rs, win[12] - rb)
+    k1 = min(win[6] + rs, win[13] - 1 + rb) + 1
+    return k0, k1
+
+
+# --- loops over one column's k range ----------------------------------------
+# Each helper runs over whole 1D slices from index 0: a loop that starts at a
+# run-time offset, or that stores to more than one array, is not vectorised.
+
+@njit(**_INLINE)
+def curl_h(f, coef, a1, a0, ga, b1, b0, gb):
+    """f -= coef ((a1 - a0) ga - (b1 - b0) gb[k]): an H component with its z term graded per k."""
+    for k in range(f.size):
+        f[k] -= coef * ((a1[k] - a0[k]) * ga - (b1[k] - b0[k]) * gb[k])
+
+
+@njit(**_INLINE)
+def curl_h_xy(f, coef, a1, a0, ga, b1, b0, gb):
+    """f -= coef ((a1 - a0) ga - (b1 - b0) gb): Hz, both terms graded per column."""
+    for k in range(f.size):
+        f[k] -= coef * ((a1[k] - a0[k]) * ga - (b1[k] - b0[k]) * gb)
+
+
+@njit(**_INLINE)
+def curl_e(f, ca, cb, a1, a0, ga, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) ga - (b1 - b0) gb[k])."""
+    for k in range(f.size):
+        f[k] = ca * f[k] + cb * ((a1[k] - a0[k]) * ga - (b1[k] - b0[k]) * gb[k])
+
+
+@njit(**_INLINE)
+def curl_e_xy(f, ca, cb, a1, a0, ga, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) ga - (b1 - b0) gb): Ez."""
+    for k in range(f.size):
+        f[k] = ca * f[k] + cb * ((a1[k] - a0[k]) * ga - (b1[k] - b0[k]) * gb)
+
+
+@njit(**_INLINE)
+def psi_column(p, f, b, c, a1, a0, coef):
+    """x- or y-slab: p = b p + c (a1 - a0);  f += coef p (b, c constant along k)."""
+    for k in range(f.size):
+        p[k] = b * p[k] + c * (a1[k] - a0[k])
+        f[k] += coef * p[k]
+
+
+@njit(**_INLINE)
+def psi_z(p, f, b, c, a1, a0, coef):
+    """z-slab: as psi_column with b, c graded per k."""
+    for k in range(f.size):
+        p[k] = b[k] * p[k] + c[k] * (a1[k] - a0[k])
+        f[k] += coef * p[k]
+
+
+@njit(**_INLINE)
+def psi_z_ranges(k0, k1, z_lo, z_hi, first):
+    """The parts of [k0, k1) in the low z-slab [first, z_lo) and the high one [z_hi, ...),
+    and the offset of the high part in the psi storage."""
+    return max(k0, first), min(k1, z_lo), max(k0, z_hi), k1, z_hi - z_lo
+
+
+@njit(**_ROWS)
+def h_rows(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, gyh, gzh,
+           xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz,
+           hy_x, hz_x, hx_y, hz_y, hx_z, hy_z, win):
+    """Rows i_first..i_last-1 of the H update inside the window:
+    H -= c0 dt curl E, with psi in the slabs."""
+    nxp, nyp, nzp = Ex.shape
+    nz = nzp - 1
+    for i in range(max(win[0], 0, i_first), min(win[1], nxp - 1, i_last)):
+        xi = xmap[i]
+        gx = gxh[i]
+        for j in range(max(win[2], 0), min(win[3], nyp - 1)):
+            k0, k1 = column_range(win, i, j)
+            k0 = max(k0, 0)
+            k1 = min(k1, nz)
+            if k0 >= k1:
+                continue
+            gy = gyh[j]
+            ex, ey, ez = Ex[i, j, k0:k1], Ey[i, j, k0:k1], Ez[i, j, k0:k1]
+            hx, hy, hz = Hx[i, j, k0:k1], Hy[i, j, k0:k1], Hz[i, j, k0:k1]
+            ex_k, ey_k = Ex[i, j, k0 + 1:k1 + 1], Ey[i, j, k0 + 1:k1 + 1]
+            ex_j, ez_j = Ex[i, j + 1, k0:k1], Ez[i, j + 1, k0:k1]
+            ey_i, ez_i = Ey[i + 1, j, k0:k1], Ez[i + 1, j, k0:k1]
+            gz = gzh[k0:k1]
+            curl_h(hx, cdt, ez_j, ez, gy, ey_k, ey, gz)
+            curl_h(hy, -cdt, ez_i, ez, gx, ex_k, ex, gz)
+            curl_h_xy(hz, cdt, ey_i, ey, gx, ex_j, ex, gy)
+            if xi >= 0:
+                psi_column(hy_x[xi, j, k0:k1], hy, bx[i], cx[i], ez_i, ez, cdt)
+                psi_column(hz_x[xi, j, k0:k1], hz, bx[i], cx[i], ey_i, ey, -cdt)
+            yj = ymap[j]
+            if yj >= 0:
+                psi_column(hx_y[i, yj, k0:k1], hx, by[j], cy[j], ez_j, ez, -cdt)
+                psi_column(hz_y[i, yj, k0:k1], hz, by[j], cy[j], ex_j, ex, cdt)
+            if z_lo > 0 or z_hi < nz:
+                la, lb, ha, hb, shift = psi_z_ranges(k0, k1, z_lo, z_hi, 0)
+                for a, b, q in ((la, lb, 0), (ha, hb, shift)):
+                    if a < b:
+                        psi_z(hx_z[i, j, a - q:b - q], Hx[i, j, a:b], bz[a:b], cz[a:b],
+                              Ey[i, j, a + 1:b + 1], Ey[i, j, a:b], cdt)
+                        psi_z(hy_z[i, j, a - q:b - q], Hy[i, j, a:b], bz[a:b], cz[a:b],
+                              Ex[i, j, a + 1:b + 1], Ex[i, j, a:b], -cdt)
+
+
+@njit(**_ROWS)
+def e_rows(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
+           xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz,
+           ey_x, ez_x, ex_y, ez_y, ex_z, ey_z, win):
+    """Rows i_first..i_last-1 of the E update inside the window:
+    E = ca E + cb curl H, with psi in the slabs.
+
+    Tangential E on the outer faces is never touched: electric walls."""
+    nxp, nyp, nzp = Ex.shape
+    nz = nzp - 1
+    for i in range(max(win[0], 0, i_first), min(win[1], nxp - 1, i_last)):
+        xi = xmap[i]
+        gx = gxn[i]
+        im = max(i - 1, 0)
+        for j in range(max(win[2], 0), min(win[3], nyp - 1)):
+            k0, k1 = column_range(win, i, j)
+            k1 = min(k1, nz)
+            ka = max(k0, 1)  # Ex, Ey: inner k only
+            kb = max(k0, 0)  # Ez: every k
+            if kb >= k1:
+                continue
+            gy = gyn[j]
+            jm = max(j - 1, 0)
+            yj = ymap[j]
+            if ka < k1:
+                gz = gzn[ka:k1]
+                hx, hy, hz = Hx[i, j, ka:k1], Hy[i, j, ka:k1], Hz[i, j, ka:k1]
+                if j >= 1:
+                    ex = Ex[i, j, ka:k1]
+                    hz_j = Hz[i, jm, ka:k1]
+                    curl_e(ex, ca, cb, hz, hz_j, gy, hy, Hy[i, j, ka - 1:k1 - 1], gz)
+                    if yj >= 0:
+                        psi_column(ex_y[i, yj, ka:k1], ex, by[j], cy[j], hz, hz_j, cb)
+                if i >= 1:
+                    ey = Ey[i, j, ka:k1]
+                    hz_i = Hz[im, j, ka:k1]
+                    curl_e(ey, ca, -cb, hz, hz_i, gx, hx, Hx[i, j, ka - 1:k1 - 1], gz)
+                    if xi >= 0:
+                        psi_column(ey_x[xi, j, ka:k1], ey, bx[i], cx[i], hz, hz_i, -cb)
+            if i >= 1 and j >= 1:
+                ez = Ez[i, j, kb:k1]
+                hx, hy = Hx[i, j, kb:k1], Hy[i, j, kb:k1]
+                hy_i, hx_j = Hy[im, j, kb:k1], Hx[i, jm, kb:k1]
+                curl_e_xy(ez, ca, cb, hy, hy_i, gx, hx, hx_j, gy)
+                if xi >= 0:
+                    psi_column(ez_x[xi, j, kb:k1], ez, bx[i], cx[i], hy, hy_i, cb)
+                if yj >= 0:
+                    psi_column(ez_y[i, yj, kb:k1], ez, by[j], cy[j], hx, hx_j, -cb)
+            if z_lo > 0 or z_hi < nz:
+                la, lb, ha, hb, shift = psi_z_ranges(kb, k1, z_lo, z_hi, 1)
+                for a, b, q in ((la, lb, 0), (ha, hb, shift)):
+                    if a < b:
+                        if j >= 1:
+                            psi_z(ex_z[i, j, a - q:b - q], Ex[i, j, a:b], bz[a:b], cz[a:b],
+                                  Hy[i, j, a:b], Hy[i, j, a - 1:b - 1], -cb)
+                        if i >= 1:
+                            psi_z(ey_z[i, j, a - q:b - q], Ey[i, j, a:b], bz[a:b], cz[a:b],
+                                  Hx[i, j, a:b], Hx[i, j, a - 1:b - 1], cb)
+
+
+# --- the whole grid at once: each i-plane as one long loop ------------------------
+# Without a window every (j, k) of a plane is updated, so a plane is one loop over
+# m = j (NZ+1) + k instead of NY short column loops.  The neighbours in j and k are
+# at m + (NZ+1) and m + 1.  Grading planes carry 1/(kappa d) per m and are zero
+# where a component is not updated (walls, normal H, padding), which leaves those
+# entries exactly zero; the arithmetic is otherwise term for term that of the
+# column loops, so both give bitwise the same fields.
+
+@njit(**_INLINE)
+def curl_h_plane(f, coef, a1, a0, ga, b1, b0, gb):
+    """f -= coef ((a1 - a0) ga[m] - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] -= coef * ((a1[m] - a0[m]) * ga[m] - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_h_masked(f, coef, a1, a0, ga, mask, b1, b0, gb):
+    """f -= coef ((a1 - a0) (ga mask[m]) - (b1 - b0) gb[m]) (ga constant on the plane)."""
+    for m in range(f.size):
+        f[m] -= coef * ((a1[m] - a0[m]) * (ga * mask[m]) - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_e_plane(f, ca, cb, a1, a0, ga, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) ga[m] - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] = ca * f[m] + cb * ((a1[m] - a0[m]) * ga[m] - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_INLINE)
+def curl_e_masked(f, ca, cb, a1, a0, ga, mask, b1, b0, gb):
+    """f = ca f + cb ((a1 - a0) (ga mask[m]) - (b1 - b0) gb[m])."""
+    for m in range(f.size):
+        f[m] = ca * f[m] + cb * ((a1[m] - a0[m]) * (ga * mask[m]) - (b1[m] - b0[m]) * gb[m])
+
+
+@njit(**_ROWS)
+def h_planes(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, planes, xmap, y_runs, z_lo, z_hi,
+             bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z):
+    """Planes i_first..i_last-1 of the whole-grid H update.  Fields are (NX+1, (NY+1)(NZ+1))
+    views; planes = (gy, gz, mask) per m; by, cy per m; y_runs rows (j0, j1, first psi row);
+    z-psi as (NX+1, (NY+1) n_z) views."""
+    nxp, size = Ex.shape
+    s = bz.size + 1  # NZ + 1
+    ny = size // s - 1
+    nz = s - 1
+    end = ny * s
+    nzs = hx_z.shape[1] // (ny + 1)
+    gy, gz, mask = planes[0][:end], planes[1][:end], planes[2][:end]
+    for i in range(i_first, min(i_last, nxp - 1)):
+        gx = gxh[i]
+        ex, ex_k, ex_j = Ex[i, :end], Ex[i, 1:end + 1], Ex[i, s:end + s]
+        ey, ey_k, ey_i = Ey[i, :end], Ey[i, 1:end + 1], Ey[i + 1, :end]
+        ez, ez_j, ez_i = Ez[i, :end], Ez[i, s:end + s], Ez[i + 1, :end]
+        hx, hy, hz = Hx[i, :end], Hy[i, :end], Hz[i, :end]
+        curl_h_plane(hx, cdt, ez_j, ez, gy, ey_k, ey, gz)
+        curl_h_masked(hy, -cdt, ez_i, ez, gx, mask, ex_k, ex, gz)
+        curl_h_masked(hz, cdt, ey_i, ey, gx, mask, ex_j, ex, gy)
+        xi = xmap[i]
+        if xi >= 0:
+            psi_column(hy_x[xi, :end], hy, bx[i], cx[i], ez_i, ez, cdt)
+            psi_column(hz_x[xi, :end], hz, bx[i], cx[i], ey_i, ey, -cdt)
+        for r in range(y_runs.shape[0]):
+            a, b, q = y_runs[r, 0] * s, y_runs[r, 1] * s, y_runs[r, 2] * s
+            n = b - a
+            psi_z(hx_y[i, q:q + n], Hx[i, a:b], by[a:b], cy[a:b], Ez[i, a + s:b + s], Ez[i, a:b], -cdt)
+            psi_z(hz_y[i, q:q + n], Hz[i, a:b], by[a:b], cy[a:b], Ex[i, a + s:b + s], Ex[i, a:b], cdt)
+        if z_lo > 0 or z_hi < nz:
+            for j in range(ny):
+                o = j * s
+                w = j * nzs
+                for a, b, q in ((0, z_lo, 0), (z_hi, nz, z_hi - z_lo)):
+                    if a < b:
+                        psi_z(hx_z[i, w + a - q:w + b - q], Hx[i, o + a:o + b], bz[a:b], cz[a:b],
+                              Ey[i, o + a + 1:o + b + 1], Ey[i, o + a:o + b], cdt)
+                        psi_z(hy_z[i, w + a - q:w + b - q], Hy[i, o + a:o + b], bz[a:b], cz[a:b],
+                              Ex[i, o + a + 1:o + b + 1], Ex[i, o + a:o + b], -cdt)
+
+
+@njit(**_ROWS)
+def e_planes(i_first, i_last, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, planes, xmap, y_runs, z_lo, z_hi,
+             bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z):
+    """Planes i_first..i_last-1 of the whole-grid E update (see h_planes);
+    planes = (gy_ex, gz_ex, mask_ey, gz_ey, mask_ez, gy_ez)."""
+    nxp, size = Ex.shape
+    s = bz.size  # NZ + 1 (nodes)
+    ny = size // s - 1
+    nz = s - 1
+    end = ny * s
+    nzs = ex_z.shape[1] // (ny + 1)
+    gy_ex, gz_ex = planes[0][s:end], planes[1][s:end]
+    mask_ey, gz_ey = planes[2][1:end], planes[3][1:end]
+    mask_ez, gy_ez = planes[4][s:end], planes[5][s:end]
+    for i in range(i_first, min(i_last, nxp - 1)):
+        gx = gxn[i]
+        hz, hz_j = Hz[i, s:end], Hz[i, :end - s]
+        curl_e_plane(Ex[i, s:end], ca, cb, hz, hz_j, gy_ex, Hy[i, s:end], Hy[i, s - 1:end - 1], gz_ex)
+        if i >= 1:
+            ey = Ey[i, 1:end]
+            hz1, hz_i = Hz[i, 1:end], Hz[i - 1, 1:end]
+            curl_e_masked(ey, ca, -cb, hz1, hz_i, gx, mask_ey, Hx[i, 1:end], Hx[i, :end - 1], gz_ey)
+            ez = Ez[i, s:end]
+            hy, hy_i = Hy[i, s:end], Hy[i - 1, s:end]
+            curl_e_masked(ez, ca, cb, hy, hy_i, gx, mask_ez, Hx[i, s:end], Hx[i, :end - s], gy_ez)
+            xi = xmap[i]
+            if xi >= 0:
+                psi_column(ey_x[xi, 1:end], ey, bx[i], cx[i], hz1, hz_i, -cb)
+                psi_column(ez_x[xi, s:end], ez, bx[i], cx[i], hy, hy_i, cb)
+        for r in range(y_runs.shape[0]):
+            a, b, q = y_runs[r, 0] * s, y_runs[r, 1] * s, y_runs[r, 2] * s
+            n = b - a
+            psi_z(ex_y[i, q:q + n], Ex[i, a:b], by[a:b], cy[a:b], Hz[i, a:b], Hz[i, a - s:b - s], cb)
+            if i >= 1:
+                psi_z(ez_y[i, q:q + n], Ez[i, a:b], by[a:b], cy[a:b], Hx[i, a:b], Hx[i, a - s:b - s], -cb)
+        if z_lo > 0 or z_hi < nz:
+            for j in range(ny):
+                o = j * s
+                w = j * nzs
+                for a, b, q in ((1, z_lo, 0), (z_hi, nz, z_hi - z_lo)):
+                    if a < b:
+                        if j >= 1:
+                            psi_z(ex_z[i, w + a - q:w + b - q], Ex[i, o + a:o + b], bz[a:b], cz[a:b],
+                                  Hy[i, o + a:o + b], Hy[i, o + a - 1:o + b - 1], -cb)
+                        if i >= 1:
+                            psi_z(ey_z[i, w + a - q:w + b - q], Ey[i, o + a:o + b], bz[a:b], cz[a:b],
+                                  Hx[i, o + a:o + b], Hx[i, o + a - 1:o + b - 1], cb)
+
+
+@njit(**_PARALLEL)
+def h_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, gyh, gzh,
+             xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz,
+             hy_x, hz_x, hx_y, hz_y, hx_z, hy_z, win):
+    """h_rows over len(chunks) - 1 row chunks, one per thread (rows are independent)."""
+    for c in prange(chunks.size - 1):
+        h_rows(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, gyh, gzh,
+               xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z, win)
+
+
+@njit(**_PARALLEL)
+def e_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
+             xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz,
+             ey_x, ez_x, ex_y, ez_y, ex_z, ey_z, win):
+    """e_rows over len(chunks) - 1 row chunks, one per thread."""
+    for c in prange(chunks.size - 1):
+        e_rows(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, gyn, gzn,
+               xmap, ymap, z_lo, z_hi, bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z, win)
+
+
+@njit(**_PARALLEL)
+def h_plane_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, planes, xmap, y_runs, z_lo, z_hi,
+                   bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z):
+    """h_planes over row chunks, one per thread."""
+    g0, g1, g2 = planes
+    for c in prange(chunks.size - 1):
+        h_planes(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, cdt, gxh, (g0, g1, g2), xmap, y_runs,
+                 z_lo, z_hi, bx, cx, by, cy, bz, cz, hy_x, hz_x, hx_y, hz_y, hx_z, hy_z)
+
+
+@njit(**_PARALLEL)
+def e_plane_chunks(chunks, Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, planes, xmap, y_runs, z_lo, z_hi,
+                   bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z):
+    """e_planes over row chunks, one per thread."""
+    g0, g1, g2, g3, g4, g5 = planes
+    for c in prange(chunks.size - 1):
+        e_planes(chunks[c], chunks[c + 1], Ex, Ey, Ez, Hx, Hy, Hz, ca, cb, gxn, (g0, g1, g2, g3, g4, g5), xmap,
+                 y_runs, z_lo, z_hi, bx, cx, by, cy, bz, cz, ey_x, ez_x, ex_y, ez_y, ex_z, ey_z)
+
+
+def row_chunks(win, n_rows: int, threads: int) -> np.ndarray:
+    """Bounds of `threads` equal chunks of the window's rows."""
+    lo, hi = max(int(win[0]), 0), min(int(win[1]), n_rows)
+    return np.linspace(lo, max(lo, hi), threads + 1).round().astype(np.int64)
+
+
+@njit(**_SERIAL)
+def window_cells(win, nxp, nyp, nzp):
+    """Cells a window updates (for throughput figures)."""
+    total = 0
+    for i in range(max(win[0], 0), min(win[1], nxp - 1)):
+        for j in range(max(win[2], 0), min(win[3], nyp - 1)):
+            k0, k1 = column_range(win, i, j)
+            total += max(0, min(k1, nzp - 1) - max(k0, 0))
+    return total
+
+
+@njit(**_SERIAL)
+def sum_squares_box(A, i0, i1, j0, j1, k0, k1):
+    """Sum of squares over A[i0:i1, j0:j1, k0:k1], accumulated in float64."""
+    total = 0.0
+    for i in range(i0, i1):
+        for j in range(j0, j1):
+            for k in range(k0, k1):
+                v = float(A[i, j, k])
+                total += v * v
+    return total
+
+
+@njit(**_SERIAL)
+def error_sums_box(A, R, i0, j0, k0):
+    """(sum (A - R)^2, sum R^2) of A's box at (i0, j0, k0) against R (same shape as the box)."""
+    err = 0.0
+    total = 0.0
+    ni, nj, nk = R.shape
+    for i in range(ni):
+        for j in range(nj):
+            for k in range(nk):
+                r = float(R[i, j, k])
+                d = float(A[i0 + i, j0 + j, k0 + k]) - r
+                err += d * d
+                total += r * r
+    return err, total

@@ -1,0 +1,93 @@
+"""The 3D confirmation's speed, run by hand:
+
+    python tests/bench/bench_3d.py [--repeats N]
+
+For the demo scenario's 3D box it times, interleaved so a burst of load on a
+shared machine hits every case alike (medians of N repeats):
+- the whole confirmation with a cold reference (reference, test run and the
+  4000-step late-time check), as `check --3d` and the page run it;
+- the windowed reference alone, in 1 and 2 threads;
+- the 3D kernel on the test box (Mcells/s = box cells x steps / seconds), in
+  1 and 2 threads, against the 2D kernel on the demo's 2D grid in the same
+  run (one thread each), and both kernels with walls instead of layers.
+The last line is `box_cells=... test_s=... reference_s=... mcells_per_s=...`
+(the one-thread figures of the default confirmation).
+"""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import time
+from dataclasses import replace
+
+from quietlayer.engine import Boundary, Side, simulate
+from quietlayer.engine.confirm3d import Reference3DCache, compute_reference, confirm_3d, run_box
+from quietlayer.engine.defaults import default_scenario
+from quietlayer.engine.grid3d import box_from_scenario, build_grid3d
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=3)
+    args = parser.parse_args()
+
+    s2 = default_scenario()
+    box = box_from_scenario(s2)
+    walls2 = s2.with_changes(boundary=Boundary.all_sides(Side(kind="wall")))
+    walls3 = replace(box, cells=box.total_cells, faces=(None,) * 6, probes=())
+    grid3, grid3_walls = build_grid3d(box), build_grid3d(walls3)
+    cells3 = box.total_cells[0] * box.total_cells[1] * box.total_cells[2]
+    print(f"3D box: {box.describe()}")
+    print(f"2D grid: {s2.total_cells_x} x {s2.total_cells_y} cells with the layers, {s2.steps} steps")
+
+    # warm every kernel (compilation or the numba cache) outside the timing
+    simulate(s2.with_changes(steps=20), threads=1)
+    simulate(walls2.with_changes(steps=20), threads=1)
+    for threads in (1, 2):
+        run_box(grid3, 5, threads=threads)
+    compute_reference(replace(box, steps=8))
+
+    cases = {
+        "confirm (cold reference, 1 thread)": lambda: _confirm(s2),
+        "reference, 1 thread": lambda: _reference(box, 1),
+        "reference, 2 threads": lambda: _reference(box, 2),
+        "3D test run, 1 thread": lambda: _mcells(run_box(grid3, threads=1)),
+        "3D test run, 2 threads": lambda: _mcells(run_box(grid3, threads=2)),
+        "2D test run, 1 thread": lambda: _mcells(simulate(s2, threads=1)),
+        "3D walls only, 1 thread": lambda: _mcells(run_box(grid3_walls, threads=1)),
+        "2D walls only, 1 thread": lambda: _mcells(simulate(walls2, threads=1)),
+    }
+    results = {name: [] for name in cases}
+    for _ in range(args.repeats):
+        for name, case in cases.items():
+            results[name].append(case())
+    med = {name: {k: statistics.median(r[k] for r in runs) for k in runs[0]} for name, runs in results.items()}
+    for name, figures in med.items():
+        print(f"  {name:<38}" + "  ".join(f"{k} {v:.3g}" for k, v in figures.items()))
+    ratio = med["3D test run, 1 thread"]["mcells_per_s"] / med["2D test run, 1 thread"]["mcells_per_s"]
+    ratio_walls = med["3D walls only, 1 thread"]["mcells_per_s"] / med["2D walls only, 1 thread"]["mcells_per_s"]
+    print(f"3D / 2D kernel Mcells/s: {ratio:.2f} with the layers, {ratio_walls:.2f} with walls only")
+    c = med["confirm (cold reference, 1 thread)"]
+    print(f"box_cells={cells3} test_s={c['test_s']:.3f} reference_s={c['reference_s']:.2f} "
+          f"mcells_per_s={med['3D test run, 1 thread']['mcells_per_s']:.1f} confirm_s={c['total_s']:.2f}")
+
+
+def _confirm(s) -> dict:
+    t0 = time.perf_counter()
+    c = confirm_3d(s, cache=Reference3DCache(use_disk=False))
+    return {"total_s": time.perf_counter() - t0, "reference_s": c.reference_s, "test_s": c.test_s,
+            "late_s": c.late_s}
+
+
+def _reference(box, threads: int) -> dict:
+    r = compute_reference(box, threads=threads)
+    return {"s": r.elapsed_s, "mcells_per_s": r.cell_updates / r.elapsed_s / 1e6}
+
+
+def _mcells(run) -> dict:
+    return {"s": run.elapsed_s, "mcells_per_s": run.mcells_per_s}
+
+
+if __name__ == "__main__":
+    main()
