@@ -65,11 +65,26 @@ def _set_status(**changes) -> None:
             _status = CompileStatus(**{**_status.__dict__, **changes})
 
 
+def cache_is_warm() -> bool:
+    """Whether numba's cache holds current compiled code for the main kernels (then
+    loading them takes about a second and no NumPy phase is needed)."""
+    try:
+        return all(len(f._cache._cache_file._load_index()) > 0  # numba's own stamp check of the index
+                   for f in (kernels.advance, kernels.cone_rows, kernels.cone_finish))
+    except Exception:  # another numba's cache layout: take the safe way
+        return False
+
+
 def compile_in_background(load) -> threading.Thread:
-    """Use the NumPy loops until the kernels are compiled in a child process and
+    """With a warm cache, just load the compiled kernels in a thread.  Otherwise
+    use the NumPy loops until the kernels are compiled in a child process and
     `load()` (which runs the compiled kernels once in this process, loading them
     from the cache) has returned; then the compiled kernels.  If the child fails,
     `load()` compiles them here instead.  Returns the watching thread."""
+    if cache_is_warm():  # load here at once: a page arriving meanwhile waits a moment for the same code
+        thread = threading.Thread(target=load, name="ql-load", daemon=True)
+        thread.start()
+        return thread
     from .warm import EXPECTED_S, STAGES
     global _status, _started
     with _lock:

@@ -506,57 +506,24 @@ def cone_span(i, reach_source, reach_target, source_box, target_box, n_cols):
 
 @njit(**_ROW)
 def secondary_span(P, S1, S2, i, j0, j1, homog, ca, cb, ca1, cb1, ca2, cb2, gyh, gxh):
-    """secondary_row on columns j0..j1-1 only.  The loops run over views from
-    index 0: a loop from a variable start would get negative-index checks
-    and lose its vectorisation."""
+    """secondary_row on columns j0..j1-1 only."""
     nxp, nyp = P.shape
-    n1 = min(j1, nyp - 1) - j0
-    p0 = P[i, j0:]
-    s1 = S1[i, j0:]
-    gy = gyh[j0:]
-    if homog:
-        for j in range(n1):
-            s1[j] = ca * s1[j] - cb * ((p0[j + 1] - p0[j]) * gy[j])
-    else:
-        a1 = ca1[i, j0:]
-        b1 = cb1[i, j0:]
-        for j in range(n1):
-            s1[j] = a1[j] * s1[j] - b1[j] * ((p0[j + 1] - p0[j]) * gy[j])
+    r = 0 if homog else i
+    s1_columns(P[i], S1[i], gyh, j0, min(j1, nyp - 1), homog, ca, cb, ca1[r], cb1[r])
     if i < nxp - 1:
-        p1 = P[i + 1, j0:]
-        s2 = S2[i, j0:]
-        g = gxh[i]
-        if homog:
-            for j in range(j1 - j0):
-                s2[j] = ca * s2[j] + cb * ((p1[j] - p0[j]) * g)
-        else:
-            a2 = ca2[i, j0:]
-            b2 = cb2[i, j0:]
-            for j in range(j1 - j0):
-                s2[j] = a2[j] * s2[j] + b2[j] * ((p1[j] - p0[j]) * g)
+        a2, b2 = ca2[r], cb2[r]
+        if not homog:
+            a2, b2 = a2[j0:j1], b2[j0:j1]
+        s2_row(P[i, j0:j1], P[i + 1, j0:j1], S2[i, j0:j1], gxh[i], homog, ca, cb, a2, b2)
 
 
 @njit(**_ROW)
 def primary_span(P, S1, S2, i, j0, j1, homog, ca, cb, ca_arr, cb_arr, gxn, gyn):
-    """primary_row on the inner columns among j0..j1-1 only (loops over views, as above)."""
+    """primary_row on the inner columns among j0..j1-1 only."""
     nyp = P.shape[1]
-    lo = max(j0, 1)
-    n = min(j1, nyp - 1) - lo
-    g = gxn[i]
-    p = P[i, lo:]
-    s1 = S1[i, lo:]
-    s1m = S1[i, lo - 1:]
-    s2 = S2[i, lo:]
-    s2m = S2[i - 1, lo:]
-    gy = gyn[lo:]
-    if homog:
-        for j in range(n):
-            p[j] = ca * p[j] + cb * ((s2[j] - s2m[j]) * g - (s1[j] - s1m[j]) * gy[j])
-    else:
-        a = ca_arr[i, lo:]
-        b = cb_arr[i, lo:]
-        for j in range(n):
-            p[j] = a[j] * p[j] + b[j] * ((s2[j] - s2m[j]) * g - (s1[j] - s1m[j]) * gy[j])
+    r = 0 if homog else i
+    p_columns(P[i], S1[i], S2[i], S2[i - 1], gxn[i], gyn, max(j0, 1), min(j1, nyp - 1), homog, ca, cb,
+              ca_arr[r], cb_arr[r])
 
 
 @njit(**_SWEEP)
