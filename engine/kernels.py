@@ -463,12 +463,7 @@ def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slab
             primary_seams(P, S1, S2, primary_coef, x_slabs, y_slabs, periodic_x, periodic_y)
         add_source(P, src_i, src_j, src_coef, wave[n])
         copy_ghosts(P, periodic_x, periodic_y)
-        for m in range(probe_i.size):
-            probe_out[n + 1, m] = P[probe_i[m], probe_j[m]]
-        if frame_every > 0 and (n + 1) % frame_every == 0:
-            k = (n + 1) // frame_every - 1
-            if k < frames.shape[0]:
-                frames[k] = P[frame_i0:frame_i0 + frames.shape[1], frame_j0:frame_j0 + frames.shape[2]]
+        record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
 
 
 # --- the reflection-free reference on its light-cone window -------------------
