@@ -408,7 +408,12 @@ class QuietlayerPage:
         self.request()
 
     def _show_error(self, text: str):
-        self.message.object = text + " — the figures below are from the last valid setting."
+        if self.result is None:  # e.g. a link whose values are refused: nothing has been measured
+            self.message.object = text + " — nothing is measured until the setting is valid."
+            self.headline.object = _card("worst peak error", "–", "no valid setting yet", "worst")
+            self.spinner.value = False
+        else:
+            self.message.object = text + " — the figures below are from the last valid setting."
         self.message.visible = True
 
     # --- the compute loop --------------------------------------------------------
