@@ -599,8 +599,9 @@ class QuietlayerPage:
         s = m.scenario
         late = getattr(self, "late", None)
         if late is None:
-            late_value, late_sub = ("checking…", "20,000 steps in the background") if self.complete else \
-                ("…", "after the slider is released")
+            late_value, late_sub = (("…", "after the slider is released") if not self.complete else
+                                    ("waiting…", "starts once the engine is compiled") if not backend.compiled() else
+                                    ("checking…", "20,000 steps in the background"))
         else:
             late_value = late.status
             late_sub = (f"{late.growth_db_per_1000:+.1f} dB / 1000 steps" if late.status != "diverged"
