@@ -42,7 +42,7 @@ def box_summary(box) -> dict:
 
 def check_3d(path, options) -> int:
     """Run the 3D confirmation of the scenario file at `path`; print text or JSON; exit code."""
-    from quietlayer.app.commands.common import EXIT_FAILED, EXIT_OK, console
+    from quietlayer.app.commands.common import EXIT_FAILED, EXIT_OK, console, late_time_json
     from quietlayer.app.commands.common import db as _db, finite_or_none as _finite_or_none
     from quietlayer.app.commands.common import layer_lines as _layer_lines, load as _load
     from quietlayer.engine.confirm3d import confirm_3d
@@ -77,9 +77,7 @@ def check_3d(path, options) -> int:
     passed = not reasons
     worst_band_probe = max(band, key=band.get) if band else ""
     if options.json:
-        late = None if c.late is None else {
-            "status": c.late.status, "steps": c.late.steps, "growth_db_per_1000": c.late.growth_db_per_1000,
-            "final_db": c.late.final_db, "message": c.late.message}
+        late = late_time_json(c.late)
         out = {
             "scenario": str(path), "title": s.title, "mode": "3d", "passed": passed, "budget_db": options.budget,
             "reasons": reasons, "worst_peak_db": c.worst_peak_db, "worst_probe": c.worst_probe,

@@ -255,10 +255,6 @@ class LiveFigures:
             for key in ("total", "reflected"):
                 self._size_image(key)
 
-    def frame_count(self) -> int:
-        m = self.measurement
-        return 0 if m is None or m.frame_steps is None else int(m.frame_steps.size)
-
     def _image_geometry(self, m: Measurement, reflected: bool):
         s = m.scenario
         grid_x, grid_y = m.total_frames.shape[1] - 1, m.total_frames.shape[2] - 1

@@ -459,11 +459,8 @@ def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slab
     """
     for n in range(first_step, first_step + n_steps):
         step_rows(P, S1, S2, secondary_coef, primary_coef, x_slabs, y_slabs, chunk_starts)
-        if periodic_x or periodic_y:
-            primary_seams(P, S1, S2, primary_coef, x_slabs, y_slabs, periodic_x, periodic_y)
-        add_source(P, src_i, src_j, src_coef, wave[n])
-        copy_ghosts(P, periodic_x, periodic_y)
-        record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
+        finish_step(n, P, S1, S2, primary_coef, x_slabs, y_slabs, periodic_x, periodic_y, src_i, src_j,
+                    src_coef, wave, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
 
 
 # --- the reflection-free reference on its light-cone window -------------------
@@ -550,16 +547,19 @@ def cone_finish(n, P, S1, S2, pc, x_slabs, y_slabs, gxn, gyn, reach_source, reac
         if 1 <= i < nxp - 1:
             j0, j1 = cone_span(i, reach_source, reach_target, source_box, target_box, nyp)
             primary_span(P, S1, S2, i, j0, j1, p_homog, p_ca, p_cb, p_ca_arr, p_cb_arr, gxn, gyn)
+    finish_step(n, P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y, src_i, src_j, src_coef, wave,
+                probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
+
+
+@njit(**_ROW)
+def finish_step(n, P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y, src_i, src_j, src_coef, wave,
+                probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0):
+    """The end of step n once the rows are swept: periodic seams, source, ghost
+    copies; probe values into probe_out[n + 1]; a frame every frame_every steps."""
     if periodic_x or periodic_y:
         primary_seams(P, S1, S2, pc, x_slabs, y_slabs, periodic_x, periodic_y)
     add_source(P, src_i, src_j, src_coef, wave[n])
     copy_ghosts(P, periodic_x, periodic_y)
-    record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0)
-
-
-@njit(**_ROW)
-def record_step(n, P, probe_i, probe_j, probe_out, frames, frame_every, frame_i0, frame_j0):
-    """Probe values after step n into probe_out[n + 1]; a frame every frame_every steps."""
     for m in range(probe_i.size):
         probe_out[n + 1, m] = P[probe_i[m], probe_j[m]]
     if frame_every > 0 and (n + 1) % frame_every == 0:

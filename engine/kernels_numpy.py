@@ -163,11 +163,11 @@ def advance(first_step, n_steps, P, S1, S2, secondary_coef, primary_coef, x_slab
 
 # --- the light-cone window of a layer-free grid ------------------------------------------
 
-def _cone_rectangle(rows, reach_source, reach_target, source_box, target_box, n_cols):
-    """Rows and columns bounding the cone's spans on `rows` (see kernels.cone_span)."""
+def _cone_columns(reach_source, reach_target, source_box, target_box, n_cols):
+    """Columns bounding the cone's spans on every row (see kernels.cone_span)."""
     j0 = max(source_box[2] - reach_source, target_box[2] - reach_target, 0)
     j1 = min(source_box[3] + reach_source, target_box[3] + reach_target, n_cols - 1) + 1
-    return rows, (j0, max(j0, j1))
+    return j0, max(j0, j1)
 
 
 def cone_rows(P, S1, S2, sc, pc, gxn, gxh, gyn, gyh, reach_source, reach_target, source_box, target_box,
@@ -175,8 +175,8 @@ def cone_rows(P, S1, S2, sc, pc, gxn, gxh, gyn, gyh, reach_source, reach_target,
     """kernels.cone_rows on the rectangle around the cone (one chunk: no deferral)."""
     if defer_first:
         raise ValueError("the NumPy loops step the cone in one chunk")
-    rows, cols = _cone_rectangle((int(first), int(last)), reach_source, reach_target, source_box, target_box,
-                                 P.shape[1])
+    rows = (int(first), int(last))
+    cols = _cone_columns(reach_source, reach_target, source_box, target_box, P.shape[1])
     if rows[0] < rows[1] and cols[0] < cols[1]:
         _secondaries(P, S1, S2, sc, gyh, gxh, rows, cols)
         _primary(P, S1, S2, pc, gxn, gyn, rows, cols)

@@ -229,7 +229,7 @@ def simulate(scenario: Scenario, *, snapshot_every: int = 0,
 
         def advance(first, count):
             kernels.advance(first, count, *kernel_args)
-    advance(0, 0)  # compile or load from cache outside the timing
+    advance(0, 0)  # the whole-grid kernel is compiled or loaded here, outside the timing
     field_energy(g, P, S1, S2, loops=kernels)
     numba.set_num_threads(n_threads)  # per calling thread; the kernels' prange obeys it
     t0 = time.perf_counter()

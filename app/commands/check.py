@@ -9,8 +9,8 @@ from pathlib import Path
 
 from quietlayer.app import CAUTION
 
-from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, layer_lines, load, problem_line,
-                     shorten)
+from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, late_time_json, layer_lines, load,
+                     problem_line, shorten)
 from .options import FORMATTER, SCENARIO_HELP, decibels, paragraph, ranged
 
 DEFAULT_BUDGET_DB = -40.0  # worst peak error a check accepts unless told otherwise
@@ -76,9 +76,7 @@ def run(args) -> int:
     passed = not reasons
     worst_band_probe = max(band, key=band.get) if band else ""
     if args.json:
-        late = None if m.late is None else {
-            "status": m.late.status, "steps": m.late.steps, "growth_db_per_1000": m.late.growth_db_per_1000,
-            "final_db": m.late.final_db, "message": m.late.message}
+        late = late_time_json(m.late)
         out = {
             "scenario": str(args.scenario), "title": s.title, "passed": passed, "budget_db": args.budget,
             "reasons": reasons, "worst_peak_db": m.worst_peak_db, "worst_probe": m.worst_probe,

@@ -277,6 +277,13 @@ def finite_or_none(value):
     return value
 
 
+def late_time_json(late) -> dict | None:
+    """A late-time check as plain data for --json (None when it was not run)."""
+    return None if late is None else {
+        "status": late.status, "steps": late.steps, "growth_db_per_1000": late.growth_db_per_1000,
+        "final_db": late.final_db, "message": late.message}
+
+
 def layer_lines(s) -> list[str]:
     """One line per distinct side setting: 'left, right: CPML 10 cells, m = 3, ...'."""
     from quietlayer.engine.layer import resolved_sigma_max, side_cell
