@@ -3,43 +3,46 @@
 Moving a control rebuilds the scenario, and the measurement runs in a worker
 thread (the numba kernels release the GIL) so the page stays responsive.  A
 burst of changes is coalesced: while a run is going, further changes only
-bump a generation counter; when the run ends the newest parameters are run
-next, and a result whose generation is stale is never shown.  The 20,000-step
-late-time check follows each shown result in a second worker and is cancelled
-when the parameters change again.
+bump a generation counter; a run that a newer setting has overtaken is
+cancelled at its next progress call, the newest parameters are run next, and
+a result whose generation is stale is never shown.  Until a figure shows the
+setting in the controls it is marked as the previous one.  The 20,000-step
+late-time check and a run twice as long follow each shown result in a second
+worker and are cancelled when the parameters change again.
+
+The controls live in controls.py, the headline in headline.py, the figures in
+figures.py, and each further tab in its own module.
 """
 
 from __future__ import annotations
 
 import io
-import math
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import nullcontext
-from dataclasses import replace
 from functools import partial
 
 import holoviews as hv
-import numpy as np
 import panel as pn
 
 hv.extension("bokeh", logo=False)
 pn.extension(notifications=False)
 
 from quietlayer.assets import preset_names, preset_path
-from quietlayer.engine import (Boundary, Profile, RunCancelled, Scenario, ScenarioError, Side,
-                               parse_frequency, parse_length, sigma_opt)
+from quietlayer.engine import RunCancelled, Scenario, ScenarioError
 from quietlayer.engine import backend
 from quietlayer.engine.budget import VISITOR_BUDGET, check_work
-from quietlayer.engine.defaults import angle_probes
-from quietlayer.engine.measure import measure, late_time_check
+from quietlayer.engine.measure import late_time_check, measure
+from quietlayer.engine.run_checks import lengthened, record_length
+from quietlayer.engine.verdict import judge
 
 from . import CAUTION
 from .confirm3d_view import Confirm3DView
-from .figures import KEYS as FIGURES, LiveFigures, best_frame, finite_or_dash
+from .controls import CUSTOM, Controls, first_profile
+from .figures import KEYS as FIGURES, LiveFigures, best_frame
+from .headline import STYLE, HeadlineState, headline_html, status_text, waiting_html
 from .sweep_view import SweepView
-from .units import format_frequency, format_length, snap
 
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
 DRAG_PARTS = frozenset({"probes", "spectra"})  # while a slider is dragged: headline and spectrum only
@@ -48,8 +51,9 @@ DRAG_SETTLE_MS = 400  # a mid-drag result with nothing newer after this long get
 DRAG_COALESCE_MS = 25  # a key press sends value and value_throttled together: only the full run is made
 LATE_CHECK_REST_S = 0.8  # the late-time check starts once the controls have rested this long: while the
                          # user tunes, both cores stay free for the runs they are waiting for
-SIDE_NAMES = ["left", "right", "bottom", "top"]
-SOURCE_GAP = 12  # cells between the source and the right face in the bench layout
+PROGRESS_AFTER_S = 1.0  # a run taking longer than this shows its progress, an estimate and Cancel
+PROGRESS_EVERY_S = 0.25  # ... refreshed at most this often
+STALE_STYLE = {"opacity": "0.35", "filter": "grayscale(0.7)"}  # a figure still showing the previous setting
 
 NOTES = {
     "fields": "**What am I looking at.** Left: |field| over the whole grid in dB of the largest incident "
@@ -66,23 +70,7 @@ NOTES = {
     "profile": "**What am I looking at.** The layer's grading against depth from its inner face: "
                "conductivity sigma and CFS alpha, the stretch kappa, and the psi update coefficients b and c.",
 }
-
-STYLE = """
-:host { --ql-accent: #0072B2; }
-.ql-card { border: 1px solid #d0d7de; border-radius: 6px; padding: 6px 10px; min-width: 150px; background: #fafbfc; }
-.ql-card .ql-label { font-size: 0.8em; color: #444; }
-.ql-card .ql-value { font-size: 1.45em; font-weight: 600; color: #111; }
-.ql-card .ql-sub { font-size: 0.75em; color: #555; }
-.ql-present .ql-card .ql-value { font-size: 2.2em; }
-.ql-present .ql-card { min-width: 210px; }
-.ql-present .ql-card .ql-label, .ql-present .ql-card .ql-sub { font-size: 1.1em; }
-.ql-caution { font-size: 0.85em; color: #5a3b00; background: #fff6e0; border-left: 4px solid #E69F00; padding: 4px 8px; }
-"""
-
-
-def _card(label: str, value: str, sub: str, key: str) -> str:
-    return (f'<div class="ql-card" data-key="{key}"><div class="ql-label">{label}</div>'
-            f'<div class="ql-value" data-value="{key}">{value}</div><div class="ql-sub">{sub}</div></div>')
+NOTE_SIZE = {False: "0.85em", True: "1.25em"}  # the notes' text size, normal and in presentation mode
 
 
 def load_preset(name: str) -> Scenario:
@@ -94,14 +82,18 @@ class QuietlayerPage:
 
     def __init__(self, preset: str = "demo"):
         self.base = load_preset(preset)
-        self.profile: Profile | None = None
+        self.profile = None
         self.result = None
         self.pinned = None
+        self.late = None
+        self.longer = None  # the same setting run longer (run_checks.lengthened), once it is in
         self.generation = 0
         self.want_full = True  # what the newest request asks for (see request)
         self._drag_token = 0  # bumped by each slider move; a pending mid-drag run checks it
         self.complete = True  # the result on show has every figure (not a mid-drag one)
         self.running = False
+        self.cancelled = -1  # the generation whose run the user cancelled
+        self.stale: set = set()  # figure keys still showing a previous setting
         self.last_good: Scenario | None = None
         self.fontscale = 1.0
         self.measure_pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-measure")
@@ -110,6 +102,7 @@ class QuietlayerPage:
         self._placing_player = False
         self._lock = threading.Lock()
         self.doc = None  # the session's document, set by create_page
+        self.controls = Controls()
         self._make_widgets()
         self._set_widgets_from(self.base)
         self._make_plots()
@@ -122,33 +115,9 @@ class QuietlayerPage:
     # --- widgets ----------------------------------------------------------
     def _make_widgets(self):
         w = pn.widgets
-        self.w_preset = w.Select(label="Scenario preset", options=preset_names(), value="demo")
-        self.w_cells = w.IntSlider(label="Layer thickness (cells)", start=2, end=40, value=10)
-        self.w_order = w.FloatSlider(label="Grading order m", start=1.0, end=6.0, step=0.1, value=3.0)
-        self.w_ratio = w.FloatSlider(label="sigma_max / sigma_opt", start=0.05, end=5.0, step=0.05, value=1.0)
-        self.w_sigma_abs = pn.pane.Markdown("", margin=(-8, 10, 0, 10))
-        self.w_kappa = w.FloatSlider(label="kappa_max", start=1.0, end=30.0, step=0.5, value=1.0)
-        self.w_alpha = w.FloatSlider(label="alpha_max (S/m)", start=0.0, end=1.0, step=0.005, value=0.0)
-        self.w_alpha_order = w.FloatSlider(label="alpha grading order", start=0.0, end=4.0, step=0.1, value=1.0)
-        self.w_sides = w.CheckButtonGroup(label="Sides with the layer (others: wall)", options=SIDE_NAMES,
-                                          value=list(SIDE_NAMES), button_type="primary", button_style="outline")
-        self.w_cell = w.TextInput(label="Cell size (dx = dy)", value="1 mm")
-        self.w_courant = w.FloatSlider(label="Courant number (x 2D limit)", start=0.1, end=1.0, step=0.01, value=0.99)
-        self.w_eps = w.FloatInput(label="Host eps_r", value=1.0, start=1.0, end=100.0, step=0.1)
-        self.w_sigma_host = w.FloatInput(label="Host conductivity (S/m)", value=0.0, start=0.0, end=100.0, step=0.001)
-        self.w_pol = w.RadioButtonGroup(label="Polarization", options=["TMz", "TEz"], value="TMz")
-        self.w_fmin = w.TextInput(label="f_min", value="1 GHz", width=145)
-        self.w_fmax = w.TextInput(label="f_max", value="15 GHz", width=145)
-        self.w_precision = w.RadioButtonGroup(label="Precision", options=["float32", "float64"], value="float32")
-        self.w_nx = w.IntInput(label="Interior nx (cells)", value=80, start=30, end=600, width=145)
-        self.w_ny = w.IntInput(label="Interior ny (cells)", value=200, start=30, end=600, width=145)
-        self.w_steps = w.IntInput(label="Run length (steps)", value=600, start=50, end=6000, step=50)
         self.w_present = w.Toggle(label="Presentation mode", value=False, button_type="default")
         self.w_pin = w.Button(label="Pin as A", button_type="primary")
         self.w_unpin = w.Button(label="Clear A", disabled=True)
-        self.w_profile = w.FileInput(accept=".csv,.txt", multiple=False)
-        self.w_profile_clear = w.Button(label="Use the graded profile", disabled=True)
-        self.w_scenario_file = w.FileInput(accept=".toml", multiple=False)
         self.w_player = w.Player(label="frame", start=0, end=1, value=0, interval=80, loop_policy="loop",
                                  show_loop_controls=False, width=330)
         self.d_toml = w.FileDownload(callback=self._toml_file, filename="scenario.toml", label="Scenario (TOML)",
@@ -160,92 +129,31 @@ class QuietlayerPage:
         self.d_report = w.FileDownload(callback=self._report_file, filename="quietlayer-report.html",
                                        label="Report (HTML)", button_type="light", embed=False)
         self.message = pn.pane.Alert("", alert_type="danger", visible=False, sizing_mode="stretch_width")
-        self.status = pn.pane.Markdown("", margin=(0, 10))
+        self.status = pn.pane.Markdown("", margin=(0, 10), styles={"font-size": NOTE_SIZE[False]})
         self.engine_note = pn.pane.Alert("", alert_type="info", visible=False, sizing_mode="stretch_width")
         self.spinner = pn.indicators.LoadingSpinner(value=False, size=26)
         self.headline = pn.pane.HTML("", sizing_mode="stretch_width", stylesheets=[STYLE])
+        self.progress = pn.indicators.Progress(value=0, max=100, width=220, visible=False)
+        self.progress_text = pn.pane.Markdown("", visible=False, margin=(0, 6))
+        self.w_cancel = w.Button(label="Cancel the run", button_type="warning", visible=False, width=130)
+        self.stale_note = pn.pane.Markdown("", visible=False, margin=(0, 10),
+                                           styles={"color": "#6b4e00", "background": "#fff3cd", "padding": "2px 8px",
+                                                   "border-radius": "4px"})
 
     def _url_widgets(self):
-        return {"preset": self.w_preset, "cells": self.w_cells, "m": self.w_order, "ratio": self.w_ratio,
-                "kappa": self.w_kappa, "alpha": self.w_alpha, "ma": self.w_alpha_order, "sides": self.w_sides,
-                "cell": self.w_cell, "courant": self.w_courant, "eps": self.w_eps, "sigma": self.w_sigma_host,
-                "pol": self.w_pol, "fmin": self.w_fmin, "fmax": self.w_fmax, "prec": self.w_precision,
-                "nx": self.w_nx, "ny": self.w_ny, "steps": self.w_steps, "present": self.w_present}
+        return {**self.controls.url_widgets(), "present": self.w_present}
 
     def _set_widgets_from(self, s: Scenario):
         """Show scenario `s` in the controls (without triggering runs)."""
         self._suspend = True
         try:
-            side = next((getattr(s.boundary, n) for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"), Side())
-            self.w_cells.value = int(np.clip(side.cells, self.w_cells.start, self.w_cells.end))
-            self.w_order.value = float(np.clip(side.order, 1.0, 6.0))
-            ratio = side.sigma_ratio if side.sigma_ratio is not None else \
-                side.sigma_max / sigma_opt(side.order, s.dx, s.eps_r)
-            self.w_ratio.value = float(np.clip(snap(ratio, 0.05), 0.05, 5.0))
-            self.w_kappa.value = float(np.clip(side.kappa_max, 1.0, 30.0))
-            self.w_alpha.value = float(np.clip(side.alpha_max, 0.0, 1.0))
-            self.w_alpha_order.value = float(np.clip(side.alpha_order, 0.0, 4.0))
-            self.w_sides.value = [n for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"]
-            self.w_cell.value = format_length(s.dx)
-            self.w_courant.value = float(s.courant)
-            self.w_eps.value = float(s.eps_r)
-            self.w_sigma_host.value = float(s.sigma)
-            self.w_pol.value = s.polarization
-            self.w_fmin.value = format_frequency(s.source.f_min)
-            self.w_fmax.value = format_frequency(s.source.f_max)
-            self.w_precision.value = s.precision
-            self.w_nx.value = s.nx
-            self.w_ny.value = s.ny
-            self.w_steps.value = s.steps
+            self.controls.show(s)
         finally:
             self._suspend = False
 
-    # --- scenario from the controls ----------------------------------------
-    def _check_control_ranges(self):
-        """A link (or a file) may set a number no control could: refuse it by the control's name."""
-        for widget in self._url_widgets().values():
-            lo, hi, value = getattr(widget, "start", None), getattr(widget, "end", None), widget.value
-            if isinstance(lo, (int, float)) and isinstance(hi, (int, float)) and isinstance(value, (int, float)) \
-                    and not lo <= value <= hi:  # NaN fails too
-                raise ScenarioError(widget.name, value, f"a number from {lo:g} to {hi:g}")
-
     def scenario_from_controls(self) -> Scenario:
         """The scenario the controls describe; ScenarioError names a bad field."""
-        self._check_control_ranges()
-        b = self.base
-        d = parse_length("cell size", self.w_cell.value)
-        if not 1e-9 <= d <= 1.0:
-            raise ScenarioError("cell size", self.w_cell.value, "a length from 1 nm to 1 m, e.g. '1 mm' or '20 nm'")
-        f_min = parse_frequency("f_min", self.w_fmin.value)
-        f_max = parse_frequency("f_max", self.w_fmax.value)
-        for name, widget in (("nx", self.w_nx), ("ny", self.w_ny), ("steps", self.w_steps),
-                             ("eps_r", self.w_eps), ("host conductivity", self.w_sigma_host)):
-            if widget.value is None:
-                raise ScenarioError(name, None, "a number")
-        layer = Side(kind="cpml", cells=self.w_cells.value, order=self.w_order.value,
-                     sigma_ratio=self.w_ratio.value, kappa_max=self.w_kappa.value, alpha_max=self.w_alpha.value,
-                     alpha_order=self.w_alpha_order.value, profile=self.profile)
-        sides = {}
-        for n in SIDE_NAMES:
-            if getattr(b.boundary, n).kind == "periodic":
-                sides[n] = getattr(b.boundary, n)
-            else:
-                sides[n] = layer if n in self.w_sides.value else Side(kind="wall")
-        nx, ny = int(self.w_nx.value), int(self.w_ny.value)
-        source = replace(b.source, f_min=f_min, f_max=f_max)
-        probes = b.probes
-        if (nx, ny) != (b.nx, b.ny):
-            if nx <= SOURCE_GAP + 4:
-                raise ScenarioError("nx", nx, f"more than {SOURCE_GAP + 4} cells for the bench layout")
-            sx, sy = nx - SOURCE_GAP, min(b.source.y, ny // 3)
-            source = replace(source, x=sx, y=sy)
-            probes = angle_probes(nx, ny, sx, sy)
-        s = b.with_changes(dx=d, dy=d, nx=nx, ny=ny, steps=int(self.w_steps.value),
-                           courant=self.w_courant.value, eps_r=self.w_eps.value, sigma=self.w_sigma_host.value,
-                           polarization=self.w_pol.value, precision=self.w_precision.value,
-                           source=source, probes=probes, boundary=Boundary(**sides))
-        check_work(s, VISITOR_BUDGET)  # any visitor may ask (controls, link, upload): refuse what one change cannot afford
-        return s
+        return self.controls.scenario(self.base, self.profile)
 
     # --- figures -------------------------------------------------------------
     def _make_plots(self):
@@ -262,62 +170,74 @@ class QuietlayerPage:
         if self.result is not None:
             self.figures.show(self.result, self.pinned)
 
+    def _mark_stale(self, keys) -> None:
+        """Fade the figures in `keys` (and say so) until they show the setting in the controls."""
+        keys = set(keys) & set(self.panes) if self.result is not None else set()
+        for key in keys - self.stale:
+            self.panes[key].styles = STALE_STYLE
+        for key in self.stale - keys:
+            self.panes[key].styles = {}
+        if ("total" in keys) != ("total" in self.stale):
+            self.w_player.styles = STALE_STYLE if "total" in keys else {}
+        self.stale = keys
+        visible = bool(keys)
+        if visible:
+            self.stale_note.object = ("**Faded figures show the previous setting** until they are redrawn "
+                                      "for the one in the controls.")
+        if self.stale_note.visible != visible:
+            self.stale_note.visible = visible
+
     # --- layout ---------------------------------------------------------------
     def _layout(self):
-        card = dict(sizing_mode="stretch_width", margin=(4, 4))
-        layer_box = pn.Card(self.w_cells, self.w_order, self.w_ratio, self.w_sigma_abs, self.w_kappa,
-                            self.w_alpha, self.w_alpha_order, pn.pane.Markdown("Sides with the layer (others: wall)"),
-                            self.w_sides, pn.pane.Markdown("Profile from your own code (CSV: depth, sigma, kappa, alpha)"),
-                            self.w_profile, self.w_profile_clear, title="Layer", collapsible=True, **card)
-        problem_box = pn.Card(self.w_preset, self.w_cell, self.w_courant, self.w_eps, self.w_sigma_host,
-                              pn.pane.Markdown("Polarization"), self.w_pol, pn.Row(self.w_fmin, self.w_fmax),
-                              pn.pane.Markdown("Precision"), self.w_precision, pn.Row(self.w_nx, self.w_ny),
-                              self.w_steps, pn.pane.Markdown("Load a scenario file (TOML)"), self.w_scenario_file,
-                              title="Problem", collapsible=True, collapsed=False, **card)
-        take_box = pn.Card(self.d_toml, self.d_csv, self.d_json, self.d_report, title="Take it away",
-                           collapsible=True, collapsed=True, **card)
-        self.controls = pn.Column(layer_box, problem_box, take_box, width=330, scroll=True, height=None)
+        self.controls_panel = self.controls.panel([self.d_toml, self.d_csv, self.d_json, self.d_report])
         top = pn.Row(pn.pane.Markdown("## Quietlayer — how much does this absorbing layer reflect?", margin=(0, 10)),
                      pn.layout.HSpacer(), self.spinner, self.w_pin, self.w_unpin, self.w_present,
                      sizing_mode="stretch_width")
-        caution = pn.pane.HTML(f'<div class="ql-caution">{CAUTION}</div>', stylesheets=[STYLE],
-                               sizing_mode="stretch_width")
-        note = lambda k: pn.pane.Markdown(NOTES[k], sizing_mode="stretch_width", styles={"font-size": "0.85em"})
+        self.caution = pn.pane.HTML(f'<div class="ql-caution">{CAUTION}</div>', stylesheets=[STYLE],
+                                    sizing_mode="stretch_width")
+        self.notes = {k: pn.pane.Markdown(text, sizing_mode="stretch_width", styles={"font-size": NOTE_SIZE[False]})
+                      for k, text in NOTES.items()}
+        self.scrubber_text = pn.pane.Markdown("Time scrubber: play, pause or drag through the run.",
+                                              styles={"font-size": NOTE_SIZE[False]})
+        self.scrubber = pn.Row(self.w_player, self.scrubber_text)
         fields = pn.Column(pn.Row(self.panes["total"], pn.Spacer(width=20), self.panes["reflected"]),
-                           pn.Row(self.w_player, pn.pane.Markdown("Time scrubber: play, pause or drag through "
-                                                                  "the run.")),
-                           note("fields"), sizing_mode="stretch_width")
-        curves = pn.GridBox(pn.Column(self.panes["spectrum"], note("spectrum")),
-                            pn.Column(self.panes["angle"], note("angle")),
-                            pn.Column(self.panes["error"], note("error")),
-                            pn.Column(self.panes["profile0"], note("profile")),
+                           self.scrubber, self.notes["fields"], sizing_mode="stretch_width")
+        curves = pn.GridBox(pn.Column(self.panes["spectrum"], self.notes["spectrum"]),
+                            pn.Column(self.panes["angle"], self.notes["angle"]),
+                            pn.Column(self.panes["error"], self.notes["error"]),
+                            pn.Column(self.panes["profile0"], self.notes["profile"]),
                             ncols=2, sizing_mode="stretch_width")
         profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
-        self.tabs = pn.Tabs(("Figures", pn.Column(fields, curves, profile_row, sizing_mode="stretch_width")),
+        self.tabs = pn.Tabs(("Figures", pn.Column(self.stale_note, fields, curves, profile_row,
+                                                  sizing_mode="stretch_width")),
                             ("Sweep", self.sweep.panel), ("Confirm in 3D", self.confirm3d.panel),
                             dynamic=False, sizing_mode="stretch_width")
-        self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, self.tabs, caution,
-                              sizing_mode="stretch_width", stylesheets=[STYLE])
-        self.root = pn.Row(self.controls, self.main, sizing_mode="stretch_width")
+        run_row = pn.Row(self.progress, self.progress_text, self.w_cancel, sizing_mode="stretch_width")
+        self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, run_row, self.tabs,
+                              self.caution, sizing_mode="stretch_width", stylesheets=[STYLE])
+        self.root = pn.Row(self.controls_panel, self.main, sizing_mode="stretch_width")
 
     # --- events ---------------------------------------------------------------
     def _watch(self):
-        layer = [self.w_cells, self.w_order, self.w_ratio, self.w_kappa, self.w_alpha, self.w_alpha_order]
+        c = self.controls
+        layer = c.layer_widgets()
         for widget in layer:  # the headline and spectrum follow a drag; the full set comes on release
             widget.param.watch(self._dragged, "value")
-        for widget in layer + [self.w_courant]:  # a new Courant number needs a new reference: on release
+        for widget in layer + [c.w_courant]:  # a new Courant number needs a new reference: on release
             widget.param.watch(self._changed, "value_throttled")
-        for widget in (self.w_sides, self.w_cell, self.w_eps, self.w_sigma_host, self.w_pol, self.w_fmin,
-                       self.w_fmax, self.w_precision, self.w_nx, self.w_ny, self.w_steps):
+        for widget in (c.w_sides, c.w_cell, c.w_eps, c.w_sigma_host, c.w_pol, c.w_fmin,
+                       c.w_fmax, c.w_precision, c.w_nx, c.w_ny, c.w_steps):
             widget.param.watch(self._changed, "value")
-        self.w_preset.param.watch(self._preset_changed, "value")
+        c.w_budget.param.watch(self._budget_changed, "value")
+        c.w_preset.param.watch(self._preset_changed, "value")
         self.w_present.param.watch(self._presentation, "value")
         self.w_pin.on_click(self._pin)
         self.w_unpin.on_click(self._unpin)
-        self.w_profile.param.watch(self._profile_uploaded, "value")
-        self.w_profile_clear.on_click(self._profile_cleared)
-        self.w_scenario_file.param.watch(self._scenario_uploaded, "value")
+        self.w_cancel.on_click(self._cancel)
+        c.w_profile.param.watch(self._profile_uploaded, "value")
+        c.w_profile_clear.on_click(self._profile_cleared)
+        c.w_scenario_file.param.watch(self._scenario_uploaded, "value")
         self.w_player.param.watch(self._frame_changed, "value")
 
     def _frame_changed(self, event):
@@ -328,6 +248,19 @@ class QuietlayerPage:
     def _changed(self, *_):
         if not self._suspend:
             self.request()
+
+    def _budget_changed(self, *_):
+        """The budget only changes the verdict: no run."""
+        if self._suspend:
+            return
+        try:
+            self.controls.budget_db()
+        except ScenarioError as exc:
+            self._show_error(str(exc), field=exc.field)
+            return
+        self.message.visible = False
+        self.controls.mark_invalid(None)
+        self._show_headline()
 
     def _dragged(self, *_):
         """A slider moves: ask for the headline and spectrum, unless the release (or a
@@ -342,20 +275,32 @@ class QuietlayerPage:
             self.request(full=False)
 
     def _preset_changed(self, event):
+        if event.new == CUSTOM:
+            return  # the loaded file stays the base
         self.base = load_preset(event.new)
         self.profile = None
+        self.controls.w_profile_clear.disabled = True
+        if CUSTOM in self.controls.w_preset.options and not self._suspend:
+            self.controls.w_preset.options = preset_names()
         if self._suspend:  # restoring from a link: the other controls come from the link too
             return
         self._set_widgets_from(self.base)
         self.request()
 
     def _presentation(self, event):
-        self.controls.visible = not event.new
-        self.main.css_classes = ["ql-present"] if event.new else []
-        self.fontscale = 1.6 if event.new else 1.0
-        self.figures.set_fontscale(self.fontscale)
-        self.sweep.draw()
-        self._show_headline()
+        present = bool(event.new)
+        with self._batched():
+            self.controls_panel.visible = not present
+            self.main.css_classes = ["ql-present"] if present else []
+            self.fontscale = 1.6 if present else 1.0
+            self.figures.set_fontscale(self.fontscale)
+            size = {"font-size": NOTE_SIZE[present]}
+            for pane in [*self.notes.values(), self.status, self.scrubber_text]:
+                pane.styles = size
+            self.w_player.width = 480 if present else 330
+            self.scrubber.styles = {"zoom": "1.3"} if present else {}
+            self.sweep.draw()
+            self._show_headline()
 
     def _pin(self, *_):
         if self.result is not None:
@@ -370,22 +315,27 @@ class QuietlayerPage:
         self._redraw()
         self._show_headline()
 
+    def _cancel(self, *_):
+        """Stop the run in progress; the figures keep the last finished setting."""
+        with self._lock:
+            self.cancelled = self.generation
+
     def _profile_uploaded(self, event):
         if not event.new:
             return
         from quietlayer.engine.export import profile_from_csv
         try:
             text = event.new.decode("utf-8") if isinstance(event.new, bytes) else str(event.new)
-            self.profile = profile_from_csv(text, self.w_profile.filename or "profile")
+            self.profile = profile_from_csv(text, self.controls.w_profile.filename or "profile")
         except (ScenarioError, UnicodeDecodeError) as exc:
             self._show_error(f"Profile file: {exc}")
             return
-        self.w_profile_clear.disabled = False
+        self.controls.w_profile_clear.disabled = False
         self.request()
 
     def _profile_cleared(self, *_):
         self.profile = None
-        self.w_profile_clear.disabled = True
+        self.controls.w_profile_clear.disabled = True
         self.request()
 
     def _scenario_uploaded(self, event):
@@ -393,24 +343,31 @@ class QuietlayerPage:
             return
         try:
             s = Scenario.from_toml(event.new.decode("utf-8"))
+            check_work(s, VISITOR_BUDGET)
         except (ScenarioError, UnicodeDecodeError) as exc:
             self._show_error(f"Scenario file: {exc}")
             return
+        self._suspend = True
+        try:  # the preset box says where the scenario came from
+            self.controls.w_preset.options = [*preset_names(), CUSTOM]
+            self.controls.w_preset.value = CUSTOM
+        finally:
+            self._suspend = False
         self.load_scenario(s)
 
     def load_scenario(self, s: Scenario):
         """Put scenario `s` into the controls (a file, a cell of the sweep map) and measure it."""
         self.base = s
-        side = next((getattr(s.boundary, n) for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"), None)
-        self.profile = side.profile if side is not None else None
-        self.w_profile_clear.disabled = self.profile is None
+        self.profile = first_profile(s)
+        self.controls.w_profile_clear.disabled = self.profile is None
         self._set_widgets_from(s)
         self.request()
 
-    def _show_error(self, text: str):
+    def _show_error(self, text: str, field: str | None = None):
+        self.controls.mark_invalid(field)
         if self.result is None:  # e.g. a link whose values are refused: nothing has been measured
             self.message.object = text + " — nothing is measured until the setting is valid."
-            self.headline.object = _card("worst peak error", "–", "no valid setting yet", "worst")
+            self.headline.object = waiting_html("no valid setting yet")
             self.spinner.value = False
         else:
             self.message.object = text + " — the figures below are from the last valid setting."
@@ -424,10 +381,13 @@ class QuietlayerPage:
         work that should follow them on screen is given a delay."""
         if self.doc is not None and self.doc.session_context is not None:
             callback = partial(function, *args)
-            if delay_ms:
-                self.doc.add_timeout_callback(callback, delay_ms)
-            else:
-                self.doc.add_next_tick_callback(callback)
+            try:
+                if delay_ms:
+                    self.doc.add_timeout_callback(callback, delay_ms)
+                else:
+                    self.doc.add_next_tick_callback(callback)
+            except Exception:  # the session has ended meanwhile: nothing left to show it on
+                pass
         else:
             function(*args)
 
@@ -443,10 +403,13 @@ class QuietlayerPage:
         try:
             s = self.scenario_from_controls()
         except ScenarioError as exc:
-            self._show_error(str(exc))
+            self._show_error(str(exc), field=exc.field)
             return
         self.message.visible = False
-        self._show_sigma(s)
+        self.controls.mark_invalid(None)
+        self.controls.w_sigma_abs.object = self.controls.sigma_text(s)
+        with self._batched():
+            self._mark_stale(FIGURES)
         with self._lock:
             start = not self.running
             self.running = True
@@ -454,27 +417,59 @@ class QuietlayerPage:
             self.spinner.value = True
             self.measure_pool.submit(self._work)
 
-    def _show_sigma(self, s: Scenario):
-        side = next((getattr(s.boundary, n) for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"), None)
-        if side is None:
-            self.w_sigma_abs.object = "no side carries a layer"
+    def _run_progress(self, generation: int):
+        """progress() for one run: cancel it when it is overtaken or the user asks, and
+        show how far a long run has got."""
+        t0 = time.perf_counter()
+        shown = [0.0]
+
+        def progress(stage, step, total):
+            if generation != self.generation or self.cancelled == generation:
+                return False
+            now = time.perf_counter() - t0
+            if now > PROGRESS_AFTER_S and now - shown[0] > PROGRESS_EVERY_S:
+                shown[0] = now
+                self._call_soon(self._show_progress, generation, stage, step, total, now)
+            return True
+
+        return progress
+
+    def _show_progress(self, generation: int, stage: str, step: int, total: int, elapsed: float):
+        if generation != self.generation or not self.running:
             return
-        opt = sigma_opt(side.order, s.dx, s.eps_r)
-        text = f"sigma_max = **{side.sigma_ratio * opt:.4g} S/m** (sigma_opt = {opt:.4g} S/m)"
-        if side.profile is not None:
-            text = f"profile from file, {len(side.profile.depth)} rows (sliders for grading are ignored)"
-        self.w_sigma_abs.object = text
+        done = step / max(total, 1)
+        # the reference (when computed) and the test run cost about the same per step
+        fraction = done / 2 if stage == "reference" else (0.5 + done / 2 if self._reference_was_run else done)
+        if stage == "reference":
+            self._reference_was_run = True
+        left = elapsed * (1 - fraction) / max(fraction, 1e-3)
+        with self._batched():
+            self.progress.value = int(100 * fraction)
+            self.progress_text.object = (f"{'reference' if stage == 'reference' else 'test'} run: step {step} "
+                                         f"of {total}, {elapsed:.0f} s so far, about {left:.0f} s left")
+            for widget in (self.progress, self.progress_text, self.w_cancel):
+                widget.visible = True
+
+    def _hide_progress(self):
+        for widget in (self.progress, self.progress_text, self.w_cancel):
+            if widget.visible:
+                widget.visible = False
 
     def _work(self):
         """Worker thread: measure the newest setting until no newer one is waiting."""
         while True:
             with self._lock:
                 generation, full = self.generation, self.want_full
+            self._reference_was_run = False
+            cancelled = False
             try:
                 s = self.scenario_from_controls()
-                result = measure(s, parts=PAGE_PARTS if full else DRAG_PARTS)
+                result = measure(s, parts=PAGE_PARTS if full else DRAG_PARTS,
+                                 progress=self._run_progress(generation))
+            except RunCancelled:
+                result, cancelled = None, self.cancelled == generation
             except ScenarioError as exc:
-                self._call_soon(self._show_error, str(exc))
+                self._call_soon(self._show_error, str(exc), exc.field)
                 result = None
             except Exception as exc:  # a run that fails says why and keeps the last figures
                 self._call_soon(self._show_error, f"The run failed: {exc}")
@@ -487,9 +482,18 @@ class QuietlayerPage:
                 if result is not None:
                     self._call_soon(self._deliver, result, s, generation, full)
                 else:
-                    self._call_soon(setattr, self.spinner, "value", False)
+                    self._call_soon(self._run_ended, cancelled)
                 return
             # newer parameters arrived while this ran: run those instead
+
+    def _run_ended(self, cancelled: bool):
+        with self._batched():
+            self.spinner.value = False
+            self._hide_progress()
+            if cancelled:
+                self.message.object = ("Run cancelled — the figures below are from the last finished setting "
+                                       "(faded where the controls have moved on).")
+                self.message.visible = True
 
     def _batched(self):
         """Changes made inside leave as one message: Bokeh would otherwise send one per
@@ -508,7 +512,9 @@ class QuietlayerPage:
         self.result = result
         self.last_good = s
         self.spinner.value = self.running
+        self._hide_progress()
         self.late = None
+        self.longer = None
         self.complete = full
         self._show_headline()
         if full:
@@ -517,6 +523,7 @@ class QuietlayerPage:
             self._call_soon(self._show_figures, generation, delay_ms=HEADLINE_LEAD_MS)
         else:
             self.figures.show(result, self.pinned, keys=("spectrum",))
+            self._mark_stale(self.stale - {"spectrum"})
             # no release seen (a value set from a link, a lost mouse-up): complete it anyway
             self._call_soon(self._complete_after_drag, generation, delay_ms=DRAG_SETTLE_MS)
 
@@ -543,32 +550,44 @@ class QuietlayerPage:
         finally:
             self._placing_player = False
         self.figures.show(m, self.pinned, frame)
+        self._mark_stale(())
 
     def _start_late_check(self, s: Scenario, generation: int):
-        """The 20,000-step stability run, in its own worker; cancelled by the next change."""
-        def still_wanted(step, total):
+        """The 20,000-step stability run, then the same setting run twice as long, in
+        their own worker; both are cancelled by the next change."""
+        def still_wanted(*_):
             return generation == self.generation
 
         def work():
             time.sleep(LATE_CHECK_REST_S)  # the controls must rest first
-            while not backend.compiled() and still_wanted(0, 0):  # 20,000 steps want the compiled engine
+            while not backend.compiled() and still_wanted():  # 20,000 steps want the compiled engine
                 time.sleep(0.25)
-            if not still_wanted(0, 0):
+            if not still_wanted():
                 return
             try:
                 late = late_time_check(s, progress=still_wanted)
+                self._call_soon(self._deliver_late, late, generation)
+                if late.status != "diverged" and still_wanted():
+                    worst = self.result.worst_peak_db if self.result is not None else float("nan")
+                    longer = lengthened(s, worst, progress=still_wanted, budget=VISITOR_BUDGET)
+                    self._call_soon(self._deliver_longer, longer, generation)
             except RunCancelled:
                 return
+            except ScenarioError as exc:  # the longer run would not fit the page's budget
+                self._call_soon(self._deliver_longer, str(exc), generation)
             except Exception as exc:
                 self._call_soon(setattr, self.status, "object", f"late-time check failed: {exc}")
-                return
-            self._call_soon(self._deliver_late, late, generation)
 
         self.late_pool.submit(work)
 
     def _deliver_late(self, late, generation: int):
         if generation == self.generation:
             self.late = late
+            self._show_headline()
+
+    def _deliver_longer(self, longer, generation: int):
+        if generation == self.generation:
+            self.longer = longer
             self._show_headline()
 
     def show_engine_state(self) -> bool:
@@ -591,43 +610,32 @@ class QuietlayerPage:
         self.engine_note.visible = True
         return True
 
+    def _late_note(self) -> tuple[str, str]:
+        if not self.complete:
+            return "…", "after the slider is released"
+        if not backend.compiled():
+            return "waiting…", "starts once the engine is compiled"
+        return "checking…", "20,000 steps in the background"
+
     def _show_headline(self):
         m = self.result
         if m is None:
-            self.headline.object = _card("worst peak error", "…", "computing", "worst")
+            self.headline.object = waiting_html("computing")
             return
-        s = m.scenario
-        late = getattr(self, "late", None)
-        if late is None:
-            late_value, late_sub = (("…", "after the slider is released") if not self.complete else
-                                    ("waiting…", "starts once the engine is compiled") if not backend.compiled() else
-                                    ("checking…", "20,000 steps in the background"))
-        else:
-            late_value = late.status
-            late_sub = (f"{late.growth_db_per_1000:+.1f} dB / 1000 steps" if late.status != "diverged"
-                        else late.message)
-        delta = ""
-        if self.pinned is not None and math.isfinite(self.pinned.worst_peak_db):
-            delta = _card("difference to A", f"{m.worst_peak_db - self.pinned.worst_peak_db:+.1f} dB",
-                          f"A: {self.pinned.worst_peak_db:.1f} dB", "delta")
-        cards = [
-            _card("worst peak error", f"{finite_or_dash(m.worst_peak_db)} dB", f"at probe “{m.worst_probe}”",
-                  "worst"),
-            _card("global error", f"{finite_or_dash(m.global_db)} dB", "interior, whole run", "global")
-            if self.complete else _card("global error", "…", "when the slider is released", "global"),
-            _card("late-time check", late_value, late_sub, "late"),
-            _card("run time", f"{(m.test_s + m.reference_s) * 1e3:.0f} ms",
-                  ("NumPy loops: first start" if m.engine != "compiled" else
-                   "reference cached" if m.reference_cached else "reference computed"), "runtime"),
-            _card("cells per wavelength", f"{s.cells_per_wavelength:.1f}", f"at f_max = {format_frequency(s.source.f_max)}",
-                  "cpw"),
-            delta,
-        ]
-        present = " ql-present" if self.w_present.value else ""  # the cards live in their own shadow root
-        self.headline.object = (f'<div class="ql-cards{present}" style="display:flex;gap:8px;flex-wrap:wrap">'
-                                + "".join(cards) + "</div>")
-        self.status.object = (f"{s.title or 'custom scenario'} · {s.nx} × {s.ny} interior cells · {s.steps} steps · "
-                              f"{s.polarization} · {s.precision}")
+        try:
+            budget = self.controls.budget_db()
+        except ScenarioError:
+            budget = float("nan")
+        longer = self.longer if not isinstance(self.longer, str) else None
+        longer_note = (self.longer if isinstance(self.longer, str) else
+                       "" if not self.complete or self.late is None else
+                       f"checking the same setting at {2 * m.scenario.steps} steps…")
+        state = HeadlineState(
+            m=m, verdict=judge(m.worst_peak_db, m.worst_probe, budget, self.late), complete=self.complete,
+            late=self.late, late_note=self._late_note(), pinned=self.pinned, record=record_length(m.scenario),
+            longer=longer, longer_note=longer_note, present=bool(self.w_present.value))
+        self.headline.object = headline_html(state)
+        self.status.object = status_text(m)
 
     # --- downloads -------------------------------------------------------------
     def _current(self) -> Scenario:
@@ -646,7 +654,7 @@ class QuietlayerPage:
 
     def _report_file(self):
         from .report import report_html
-        return io.StringIO(report_html(self.result, getattr(self, "late", None)))
+        return io.StringIO(report_html(self.result, self.late))
 
     def view(self):
         return self.root
@@ -654,7 +662,7 @@ class QuietlayerPage:
     def close(self):
         """The session has ended: stop every worker."""
         with self._lock:
-            self.generation += 1  # a late-time check still running sees it and stops
+            self.generation += 1  # a run or late-time check still going sees it and stops
         self.sweep.close()
         self.confirm3d.close()
         self.measure_pool.shutdown(wait=False, cancel_futures=True)

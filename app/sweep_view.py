@@ -194,7 +194,7 @@ class SweepView:
         start, stop = choice.start, choice.stop
         if choice.length:
             try:
-                d = parse_length("cell size", self.page.w_cell.value)
+                d = parse_length("cell size", self.page.controls.w_cell.value)
                 start, stop = format_length(max(choice.lo, d / 2)), format_length(min(choice.hi, 2 * d))
             except ScenarioError:
                 pass

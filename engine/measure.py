@@ -167,12 +167,14 @@ def energy_trend(steps: int, energy_steps, total, interior) -> LateTime:
 
 
 def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: ReferenceCache | None = None,
-            late_steps: int = LATE_STEPS, threads: int | None = None) -> Measurement:
+            late_steps: int = LATE_STEPS, threads: int | None = None, progress=None) -> Measurement:
     """Measure the layer of `scenario` (or `layer` put on its non-periodic sides).
 
     parts: any of ALL_PARTS; the headline scores ('probes') are always made;
     'band' gives the spectra and their worst in-band value without the theory
     curves beside them ('spectra' gives both).
+    progress(stage, step, total), stage 'reference' (only while it is computed)
+    or 'test': called every 100 steps; return False to cancel (RunCancelled).
     """
     t_start = time.perf_counter()
     s = _with_layer(scenario, layer)
@@ -180,7 +182,10 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     unknown = parts - ALL_PARTS
     if unknown:
         raise ValueError(f"unknown parts {sorted(unknown)}; allowed: {sorted(ALL_PARTS)}")
-    ref, source = (cache or DEFAULT_CACHE).get_with_source(s)
+    def stage(name):
+        return None if progress is None else (lambda step, total: progress(name, step, total))
+
+    ref, source = (cache or DEFAULT_CACHE).get_with_source(s, progress=stage("reference"))
     cached = source != "computed"
     every = frame_every(s)
     want_frames = bool(parts & {"global", "snapshots"})
@@ -188,7 +193,7 @@ def measure(scenario: Scenario, layer=None, parts=ALL_PARTS, *, cache: Reference
     # the images need the whole grid; the global score only the interior
     window = None if "snapshots" in parts else grid.interior_slice()
     run = simulate(s, snapshot_every=every if want_frames else 0, threads=threads, grid=grid,
-                   snapshot_window=window)
+                   snapshot_window=window, progress=stage("test"))
     m = Measurement(scenario=s, times=run.times, test_s=run.elapsed_s,
                     reference_s=0.0 if cached else ref.elapsed_s, reference_cached=cached, engine=run.engine)
 

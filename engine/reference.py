@@ -95,8 +95,8 @@ def _extend(lo: float, hi: float, grid_lo: float, grid_hi: float, shift: int):
     return (-math.inf if lo <= grid_lo else lo + shift, math.inf if hi >= grid_hi else hi + shift)
 
 
-def compute_reference(s: Scenario, light_cone: bool = True) -> Reference:
-    """Run the reference of `s` (no caching).
+def compute_reference(s: Scenario, light_cone: bool = True, progress=None) -> Reference:
+    """Run the reference of `s` (no caching); progress as in simulate.
 
     light_cone: step only the cells the source has reached that can still
     reach the interior before the run ends (bitwise the same interior
@@ -108,7 +108,7 @@ def compute_reference(s: Scenario, light_cone: bool = True) -> Reference:
     # the interior (and so every probe) is all that is recorded
     target = (window[0].start, window[0].stop - 1, window[1].start, window[1].stop - 1)
     r = simulate(ref, snapshot_every=frame_every(s), snapshot_window=window,
-                 light_cone=target if light_cone else None)
+                 light_cone=target if light_cone else None, progress=progress)
     return Reference(key=s.reference_key(), probes=r.probes, frame_steps=r.snapshot_steps,
                      frames=r.snapshots.astype(s.precision), elapsed_s=r.elapsed_s, margin=(mx, my))
 
@@ -172,15 +172,16 @@ class ReferenceCache:
     def get(self, s: Scenario) -> Reference:
         return self.get_with_source(s)[0]
 
-    def get_with_source(self, s: Scenario) -> tuple[Reference, str]:
-        """The reference and where it came from: 'memory', 'disk' or 'computed'."""
+    def get_with_source(self, s: Scenario, progress=None) -> tuple[Reference, str]:
+        """The reference and where it came from: 'memory', 'disk' or 'computed'.
+        progress as in simulate, while it is computed (RunCancelled stores nothing)."""
         key = s.reference_key()
         with self._lock:
             pending = self._computing.setdefault(key, threading.Lock())
         with pending:  # threads asking for the same reference wait for one run of it
-            return self._fetch(s, key)
+            return self._fetch(s, key, progress)
 
-    def _fetch(self, s: Scenario, key: str) -> tuple[Reference, str]:
+    def _fetch(self, s: Scenario, key: str, progress=None) -> tuple[Reference, str]:
         with self._lock:
             if key in self._memory:
                 self._memory.move_to_end(key)
@@ -191,7 +192,7 @@ class ReferenceCache:
         ref = _load(path, key) if self.use_disk else None
         source = "disk" if ref is not None else "computed"
         if ref is None:
-            ref = compute_reference(s)
+            ref = compute_reference(s, progress=progress)
             if self.use_disk:
                 try:
                     _save(path, ref)

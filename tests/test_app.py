@@ -25,10 +25,10 @@ def test_controls_start_on_the_demo(page):
 
 
 def test_controls_change_the_layer_and_problem(page):
-    page.w_order.value = 4.0
-    page.w_ratio.value = 0.6
-    page.w_sides.value = ["right", "top"]
-    page.w_cell.value = "0.5 mm"
+    page.controls.w_order.value = 4.0
+    page.controls.w_ratio.value = 0.6
+    page.controls.w_sides.value = ["right", "top"]
+    page.controls.w_cell.value = "0.5 mm"
     s = page.scenario_from_controls()
     assert s.boundary.right.order == 4.0 and s.boundary.right.sigma_ratio == 0.6
     assert s.boundary.left.kind == "wall" and s.boundary.top.kind == "cpml"
@@ -37,15 +37,15 @@ def test_controls_change_the_layer_and_problem(page):
 
 @pytest.mark.parametrize("text", ["-1 mm", "0 mm", "one mm", ""])
 def test_bad_cell_size_is_a_named_error(page, text):
-    page.w_cell.value = text
+    page.controls.w_cell.value = text
     with pytest.raises(ScenarioError) as err:
         page.scenario_from_controls()
     assert err.value.field in ("cell size", "dx")
 
 
 def test_resizing_the_interior_keeps_the_bench_layout(page):
-    page.w_nx.value = 120
-    page.w_ny.value = 150
+    page.controls.w_nx.value = 120
+    page.controls.w_ny.value = 150
     s = page.scenario_from_controls()
     assert s.source.x == 120 - 12
     assert all(p.x == 117 for p in s.probes)
@@ -53,7 +53,7 @@ def test_resizing_the_interior_keeps_the_bench_layout(page):
 
 
 def test_every_preset_fills_the_controls(page):
-    for name in page.w_preset.options:
+    for name in page.controls.w_preset.options:
         base = load_preset(name)
         page.base = base
         page._set_widgets_from(base)
@@ -201,9 +201,9 @@ def test_sweep_axis_snaps_to_the_control_and_names_bad_fields():
 
 def test_every_offered_parameter_has_a_control_that_holds_its_range(page):
     """A swept value must be loadable: each control reaches its parameter's whole range."""
-    controls = {"order": page.w_order, "sigma_ratio": page.w_ratio, "cells": page.w_cells, "kappa_max": page.w_kappa,
-                "alpha_max": page.w_alpha, "alpha_order": page.w_alpha_order, "courant": page.w_courant,
-                "eps_r": page.w_eps, "sigma": page.w_sigma_host}
+    controls = {"order": page.controls.w_order, "sigma_ratio": page.controls.w_ratio, "cells": page.controls.w_cells, "kappa_max": page.controls.w_kappa,
+                "alpha_max": page.controls.w_alpha, "alpha_order": page.controls.w_alpha_order, "courant": page.controls.w_courant,
+                "eps_r": page.controls.w_eps, "sigma": page.controls.w_sigma_host}
     assert set(SWEEP_CHOICES) == set(controls) | {"cell"}
     for name, widget in controls.items():
         choice = SWEEP_CHOICES[name]
@@ -222,7 +222,7 @@ def test_sweep_form_errors_are_shown_inline(page):
     view.fields["y"]["name"].value = "order"
     view.start()
     assert view.message.visible and "y parameter" in view.message.object
-    page.w_sides.value = []
+    page.controls.w_sides.value = []
     view.fields["y"]["name"].value = "eps_r"
     view.start()
     assert "no side carries a layer" in view.message.object
@@ -239,7 +239,7 @@ def test_choosing_a_parameter_resets_its_range(page):
 
 def test_sweep_runs_on_the_controls_and_a_click_loads_the_cell(page):
     view = page.sweep
-    page.w_kappa.value = 3.0  # a setting the sweep must carry along
+    page.controls.w_kappa.value = 3.0  # a setting the sweep must carry along
     table = small_sweep(view)
     assert table.complete and table.done == 9
     assert all(r["status"] == "ok" for r in table.rows.values())
@@ -250,11 +250,11 @@ def test_sweep_runs_on_the_controls_and_a_click_loads_the_cell(page):
     assert grid.best == grid.cell_of(table.best("worst_peak_db")[0])
     assert grid.z[grid.best[1], grid.best[0]] == np.nanmin(grid.z)
 
-    page.w_kappa.value = 1.0  # the controls move on; the map still stands for the sweep's scenario
+    page.controls.w_kappa.value = 1.0  # the controls move on; the map still stands for the sweep's scenario
     i, j = plots.nearest_cell(grid, 6.2, 0.45)
     assert (i, j) == (2, 0)
     assert view.load_cell(i, j)
-    assert page.w_order.value == 6.0 and page.w_ratio.value == 0.5 and page.w_kappa.value == 3.0
+    assert page.controls.w_order.value == 6.0 and page.controls.w_ratio.value == 0.5 and page.controls.w_kappa.value == 3.0
     loaded = page.scenario_from_controls()
     index = int(grid.index[j, i])
     assert loaded == apply_point(view.base, table.points[index])
@@ -287,8 +287,8 @@ def test_best_point_and_score_follow_the_chosen_score(page):
     best = table.best("global_db")
     assert "global error" in view.status.object and f"{best[1]['global_db']:.1f} dB" in view.status.object
     view.load_best()
-    assert page.w_order.value == best[1]["point"]["order"]
-    assert page.w_ratio.value == best[1]["point"]["sigma_ratio"]
+    assert page.controls.w_order.value == best[1]["point"]["order"]
+    assert page.controls.w_ratio.value == best[1]["point"]["sigma_ratio"]
 
 
 def test_cancel_keeps_the_points_done(page, monkeypatch):

@@ -8,12 +8,11 @@ import time
 from pathlib import Path
 
 from quietlayer.app import CAUTION
+from quietlayer.engine.verdict import DEFAULT_BUDGET_DB, judge
 
 from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, late_time_json, layer_lines, load,
                      problem_line, shorten)
 from .options import FORMATTER, SCENARIO_HELP, decibels, paragraph, ranged
-
-DEFAULT_BUDGET_DB = -40.0  # worst peak error a check accepts unless told otherwise
 
 
 def add_parser(commands):
@@ -67,12 +66,8 @@ def run(args) -> int:
     if not math.isfinite(m.worst_peak_db):
         raise BadInput(f"{args.scenario}: probes: none sees the pulse within the run (steps = {s.steps}); "
                        "move the probes or lengthen the run")
-    reasons = []
-    if m.worst_peak_db > args.budget:
-        reasons.append(f"worst peak error {db(m.worst_peak_db)} ({m.worst_probe}) is above the budget "
-                       f"of {db(args.budget)}")
-    if m.late is not None and m.late.status != "stable":
-        reasons.append(f"late-time check: {m.late.status}, {m.late.message}")
+    verdict = judge(m.worst_peak_db, m.worst_probe, args.budget, m.late, late_expected=not args.no_late)
+    reasons = verdict.reasons
     passed = not reasons
     worst_band_probe = max(band, key=band.get) if band else ""
     if args.json:
