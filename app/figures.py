@@ -265,7 +265,8 @@ class _Lines:
             self.renderers[index].name = name  # the hover's first line
 
     def clear(self, index: int) -> None:
-        self.sources[index].data = dict(EMPTY_LINE)
+        if self.drawn(index):  # an empty line stays empty without a message
+            self.sources[index].data = dict(EMPTY_LINE)
 
     def drawn(self, index: int) -> bool:
         return len(self.sources[index].data["x"]) > 0
