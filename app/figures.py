@@ -365,7 +365,7 @@ class LiveFigures:
         self.angle = _Lines(angle, [dict(color=PALETTE[0], line_width=2.0),
                                     dict(color=PALETTE[1], line_dash="dashed", line_width=2.0),
                                     dict(color=PINNED, line_dash="dotted", line_width=2.0)],
-                            legend="top_left", hover=(("angle", "$x"), ("dB", "$y")), rows=[[0], [1], [2]])
+                            legend="bottom_right", hover=(("angle", "$x"), ("dB", "$y")), rows=[[0], [1], [2]])
         angle.scatter("x", "y", source=self.angle.sources[0], size=6, color=PALETTE[0])
         self.figures.update(spectrum=spectrum, error=error, angle=angle)
 
