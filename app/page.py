@@ -58,7 +58,8 @@ STALE_STYLE = {"opacity": "0.35", "filter": "grayscale(0.7)"}  # a figure still 
 NOTES = {
     "fields": "**What am I looking at.** Left: |field| over the whole grid in dB of the largest incident "
               "field; the dashed box is the interior, the layer lies outside it. Right: the layer's echo alone "
-              "(test run minus the reflection-free reference) over the interior. Star: source; dots: probes.",
+              "(test run minus the reflection-free reference) over the interior. Star: source; dots: probes; "
+              "pink outlines: blocks (hover for the material).",
     "spectrum": "**What am I looking at.** How much of each frequency comes back at a few probes (solid), "
                 "beside the continuous theory of the graded layer at that probe's incidence angle (dashed). "
                 "Where solid lies above dashed the grid, not the absorption, limits the layer.",
@@ -68,7 +69,8 @@ NOTES = {
              "angle on the nearest face. The dashed theory is for a plane wave; near a face a cylindrical "
              "wave can do better than it at grazing angles.",
     "profile": "**What am I looking at.** The layer's grading against depth from its inner face: "
-               "conductivity sigma and CFS alpha, the stretch kappa, and the psi update coefficients b and c.",
+               "conductivity sigma and CFS alpha, the stretch kappa, and the psi update coefficients b and c; "
+               "one line per side with a layer (sides alike share one).",
 }
 NOTE_SIZE = {False: "0.85em", True: "1.25em"}  # the notes' text size, normal and in presentation mode
 

@@ -6,7 +6,10 @@ import pytest
 
 from quietlayer.app.page import QuietlayerPage, load_preset
 from quietlayer.app.report import report_html
-from quietlayer.engine import Scenario, ScenarioError
+from dataclasses import replace
+
+from quietlayer.app.controls import CUSTOM
+from quietlayer.engine import Boundary, Scenario, ScenarioError, Side
 from quietlayer.engine.defaults import default_scenario
 from quietlayer.engine.export import read_coefficients_csv
 from quietlayer.engine.measure import measure
@@ -59,6 +62,47 @@ def test_every_preset_fills_the_controls(page):
         page._set_widgets_from(base)
         s = page.scenario_from_controls()
         assert s.dx == pytest.approx(base.dx) and s.eps_r == base.eps_r and s.steps == base.steps
+
+
+class Upload:
+    def __init__(self, data: bytes):
+        self.new = data
+
+
+def test_a_loaded_file_keeps_its_own_values_until_a_control_moves(page):
+    """A tuned 8.605 S/m must not come back as the slider's 0.05 grid (8.651 S/m), and sides
+    a file sets apart stay apart."""
+    demo = default_scenario()
+    tuned = Side(kind="cpml", cells=12, order=3.3, sigma_max=8.605, kappa_max=2.3, alpha_max=0.0137,
+                 alpha_order=1.0)
+    other = replace(tuned, cells=8, kappa_max=7.0)
+    s = demo.with_changes(courant=0.987, dy=demo.dx / 2,
+                          boundary=Boundary(left=tuned, right=tuned, bottom=other, top=Side(kind="wall")))
+    page._scenario_uploaded(Upload(s.to_toml().encode()))
+    assert page.controls.w_preset.value == CUSTOM  # the preset box says where the setting came from
+    loaded = page.scenario_from_controls()
+    assert loaded == s
+    assert "sides differ" in page.controls.sigma_text(loaded)
+    page.controls.w_kappa.value = 3.0  # a layer control moved: every layered side takes the controls' layer
+    moved = page.scenario_from_controls()
+    for name in ("left", "right", "bottom"):
+        side = getattr(moved.boundary, name)
+        assert side.kappa_max == 3.0 and side.sigma_max == 8.605 and side.order == 3.3 and side.cells == 12
+    assert moved.boundary.top.kind == "wall" and moved.courant == 0.987 and moved.dy == demo.dx / 2
+    page.controls.w_preset.value = "demo"  # back to a preset: the file's values are gone
+    assert page.scenario_from_controls() == demo
+    assert CUSTOM not in page.controls.w_preset.options
+
+
+def test_a_refused_value_is_marked_at_its_control(page):
+    page.controls.w_cell.value = "3 parsecs"
+    page.request()
+    assert page.message.visible and "cell size" in page.message.object
+    assert page.controls.w_cell.styles.get("outline", "").startswith("2px solid")
+    assert not page.controls.w_steps.styles
+    page.controls.w_cell.value = "1 mm"
+    page.request()
+    assert not page.controls.w_cell.styles and not page.message.visible
 
 
 def test_downloads_parse_and_reload(page):
