@@ -115,6 +115,8 @@ class Controls:
         }
         for widget, value in values.items():
             widget.value = value
+        self.w_cell.name = (self.labels[self.w_cell] if s.dx == s.dy else
+                            f"Cell size dx (dy = {format_length(s.dy)} as loaded; a new value sets both)")
         self.loaded, self.shown = s, values
 
     def untouched(self, *widgets) -> bool:

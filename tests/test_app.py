@@ -80,6 +80,7 @@ def test_a_loaded_file_keeps_its_own_values_until_a_control_moves(page):
                           boundary=Boundary(left=tuned, right=tuned, bottom=other, top=Side(kind="wall")))
     page._scenario_uploaded(Upload(s.to_toml().encode()))
     assert page.controls.w_preset.value == CUSTOM  # the preset box says where the setting came from
+    assert "dy = 500 µm as loaded" in page.controls.w_cell.name  # non-square cells are not hidden
     loaded = page.scenario_from_controls()
     assert loaded == s
     assert "sides differ" in page.controls.sigma_text(loaded)
@@ -92,6 +93,7 @@ def test_a_loaded_file_keeps_its_own_values_until_a_control_moves(page):
     page.controls.w_preset.value = "demo"  # back to a preset: the file's values are gone
     assert page.scenario_from_controls() == demo
     assert CUSTOM not in page.controls.w_preset.options
+    assert page.controls.w_cell.name == "Cell size (dx = dy)"
 
 
 def test_a_refused_value_is_marked_at_its_control(page):
