@@ -140,6 +140,22 @@ def test_check_json_is_strict_json_and_consistent(capsys):
     assert data["caution"] == CAUTION
 
 
+def test_check_warns_of_a_run_too_short_for_f_min(tmp_path, capsys):
+    """The same short-run rule as the page (engine.run_checks): the demo's farthest probe records
+    under 3 periods of f_min; at the suggested length the warning is gone."""
+    from quietlayer.engine.run_checks import record_length
+    path = tmp_path / "short.toml"
+    demo = load_scenario(DEMO)
+    path.write_text(demo.to_toml(), "utf-8")
+    _, out, _ = _run(["check", str(path), "--no-late", "--json"], capsys)
+    data = _strict_json(out)
+    record = record_length(demo)
+    assert len(data["warnings"]) == 1 and f"{record.periods:.1f} periods" in data["warnings"][0]
+    path.write_text(demo.with_changes(steps=record.steps_needed).to_toml(), "utf-8")
+    _, out, _ = _run(["check", str(path), "--no-late"], capsys)
+    assert "warning:" not in out
+
+
 def test_check_json_writes_null_for_missing_values(tmp_path, capsys):
     # a probe the pulse cannot reach within the run has no peak error: null, not NaN
     data = tomllib.loads(DEMO.read_text())

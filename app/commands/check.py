@@ -8,8 +8,10 @@ import time
 from pathlib import Path
 
 from quietlayer.app import CAUTION
+from quietlayer.engine.run_checks import MIN_PERIODS, record_length
 from quietlayer.engine.verdict import DEFAULT_BUDGET_DB, judge
 
+from ..units import format_frequency
 from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, late_time_json, layer_lines, load,
                      problem_line, shorten)
 from .options import FORMATTER, SCENARIO_HELP, decibels, paragraph, ranged
@@ -69,6 +71,7 @@ def run(args) -> int:
     verdict = judge(m.worst_peak_db, m.worst_probe, args.budget, m.late, late_expected=not args.no_late)
     reasons = verdict.reasons
     passed = not reasons
+    warnings = run_warnings(s)
     worst_band_probe = max(band, key=band.get) if band else ""
     if args.json:
         late = late_time_json(m.late)
@@ -80,7 +83,7 @@ def run(args) -> int:
             "probes": {name: {"peak_db": value, "band_worst_db": band.get(name, math.nan),
                               "incidence_deg": m.probe_angles.get(name, math.nan)}
                        for name, value in m.peak_db.items()},
-            "late_time": late, "diverged": None,
+            "late_time": late, "diverged": None, "warnings": warnings,
             "run": {"nx": s.nx, "ny": s.ny, "steps": s.steps, "dt_s": s.dt,
                     "cells_per_wavelength": s.cells_per_wavelength, "polarization": s.polarization,
                     "precision": s.precision},
@@ -109,6 +112,8 @@ def run(args) -> int:
         print(f"  {'late-time check':<20}{'skipped':>9}")
     print(f"  {'budget':<20}{db(args.budget, 9)}  (worst peak error)")
     print()
+    for line in warnings:
+        print(f"warning: {line}")
     if passed:
         print(f"PASS: worst peak error {db(m.worst_peak_db)} is within the budget of {db(args.budget)}"
               + ("" if m.late is None else "; late-time energy stable"))
@@ -116,6 +121,16 @@ def run(args) -> int:
         print("FAIL: " + "; ".join(reasons))
     print(CAUTION)
     return EXIT_OK if passed else EXIT_FAILED
+
+
+def run_warnings(s) -> list[str]:
+    """What the practitioner should know beside the scores (the page says the same)."""
+    record = record_length(s)
+    if record is None or not record.short:
+        return []
+    return [f"short run for f_min: probe '{record.probe}' records {record.periods:.1f} periods of f_min = "
+            f"{format_frequency(s.source.f_min)} after the pulse reaches it ({MIN_PERIODS:g} wanted, common practice); "
+            f"the low end of its spectrum is not resolved (about {record.steps_needed} steps would do)"]
 
 
 def _report_diverged(args, s, exc) -> int:
