@@ -23,17 +23,17 @@ import tomli_w
 
 from .errors import ResolutionWarning, ScenarioError
 from .scenario_keys import (MAX_BLOCKS, MAX_GRID_NODES, MAX_INTERIOR_CELLS, MAX_NAME_CHARS,  # noqa: F401
-                            MAX_PROBES, MAX_PROFILE_BYTES, MAX_PROFILE_ROWS, MAX_STEPS, key, limits, number_text,
-                            whole_text)
+                            MAX_PROBES, MAX_PROFILE_BYTES, MAX_PROFILE_ROWS, MAX_STEPS, KEYS_BY_PATH, limits,
+                            number_text, whole_text)
 from .units import C0, parse_frequency, parse_length
 from .waveforms import WAVEFORMS, Pulse, design_pulse
 
 # the keys, their choices and ranges: engine/scenario_keys.py (also the source of assets/scenario-file.md)
-POLARIZATIONS = key("polarization").choices
-PRECISIONS = key("precision").choices
-SIDE_KINDS = key("layer.kind").choices
+POLARIZATIONS = KEYS_BY_PATH["polarization"].choices
+PRECISIONS = KEYS_BY_PATH["precision"].choices
+SIDE_KINDS = KEYS_BY_PATH["layer.kind"].choices
 SIDES = ("left", "right", "bottom", "top")
-LINE_AXES = key("source.line").choices
+LINE_AXES = KEYS_BY_PATH["source.line"].choices
 MIN_CELLS_PER_WAVELENGTH = 10  # common practice, no source
 # limits on scenario text, checked before it is parsed: a hostile file must be
 # refused in milliseconds, not parsed for minutes (a dotted key of a million

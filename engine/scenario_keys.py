@@ -240,10 +240,6 @@ SECTIONS = {  # table -> (heading, how it is written, text before its keys)
 KEYS_BY_PATH = {k.path: k for k in KEYS}
 
 
-def key(path: str) -> Key:
-    return KEYS_BY_PATH[path]
-
-
 def limits(path: str) -> Range:
     """The allowed range of a numeric key, e.g. limits('layer.cells')."""
     return KEYS_BY_PATH[path].range
