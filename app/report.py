@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import html
 
+from bokeh.core.templates import CSS_RESOURCES
 from bokeh.embed import components
 from bokeh.embed.bundle import bundle_for_objs_and_resources
 from bokeh.resources import INLINE
@@ -92,7 +93,9 @@ def report_html(m, late=None) -> str:
     shown = {"total": fig["total"], "reflected": fig["reflected"], "spectrum": fig["spectrum"],
              "angle": fig["angle"], "error": fig["error"], **{f"profile{k}": fig[f"profile{k}"] for k in range(3)}}
     script, divs = components(shown)
-    resources = "\n".join(bundle_for_objs_and_resources(list(shown.values()), INLINE))  # its JS, then its CSS
+    bundle = bundle_for_objs_and_resources(list(shown.values()), INLINE)
+    # only the inlined code: a script by address (Panel, once imported, adds one to every bundle) would be fetched
+    resources = bundle.scripts(tag=True) + CSS_RESOURCES.render(css_raw=bundle.css_raw, css_files=[])
     title = html.escape(m.scenario.title or "custom scenario")
     curves = "\n".join(f'<div class="curve">{divs[key]}</div>' for key in ("spectrum", "angle", "error"))
     profiles = "".join(f'<div class="profile">{divs[f"profile{k}"]}</div>' for k in range(3))
