@@ -22,27 +22,23 @@ from typing import Any
 import tomli_w
 
 from .errors import ResolutionWarning, ScenarioError
+from .scenario_keys import (MAX_BLOCKS, MAX_GRID_NODES, MAX_INTERIOR_CELLS, MAX_NAME_CHARS,  # noqa: F401
+                            MAX_PROBES, MAX_PROFILE_BYTES, MAX_PROFILE_ROWS, MAX_STEPS, KEYS_BY_PATH, limits,
+                            number_text, whole_text)
 from .units import C0, parse_frequency, parse_length
 from .waveforms import WAVEFORMS, Pulse, design_pulse
 
-POLARIZATIONS = ("TMz", "TEz")
-PRECISIONS = ("float32", "float64")
-SIDE_KINDS = ("cpml", "wall", "periodic")
+# the keys, their choices and ranges: engine/scenario_keys.py (also the source of assets/scenario-file.md)
+POLARIZATIONS = KEYS_BY_PATH["polarization"].choices
+PRECISIONS = KEYS_BY_PATH["precision"].choices
+SIDE_KINDS = KEYS_BY_PATH["layer.kind"].choices
 SIDES = ("left", "right", "bottom", "top")
-LINE_AXES = ("", "x", "y")
-MAX_GRID_NODES = 64_000_000  # about 1 GB of float32 fields and coefficients
-MAX_STEPS = 2_000_000
-MAX_INTERIOR_CELLS = 20_000  # along x or y
+LINE_AXES = KEYS_BY_PATH["source.line"].choices
 MIN_CELLS_PER_WAVELENGTH = 10  # common practice, no source
-MAX_PROBES = 1000
-MAX_PROFILE_ROWS = 100_000
-MAX_BLOCKS = 200  # each block repaints the whole material grid
-MAX_NAME_CHARS = 200  # titles, probe and block names
 # limits on scenario text, checked before it is parsed: a hostile file must be
 # refused in milliseconds, not parsed for minutes (a dotted key of a million
 # parts) or until the parser runs out of stack (inline tables nested thousands deep)
 MAX_TEXT_BYTES = 1 << 20  # 1 MiB: a 10,000-row inline profile fits
-MAX_PROFILE_BYTES = 4 << 20  # a profile CSV file
 MAX_NESTING = 16  # levels of [ ] and { }; a scenario needs 3
 MAX_KEY_PARTS = 8  # parts of a dotted key; a scenario needs 4 (layer.right.profile.depth)
 MAX_NUMBER_DIGITS = 40
@@ -52,14 +48,7 @@ MAX_NUMBER_DIGITS = 40
 
 def _number(name: str, value, lo: float = -math.inf, hi: float = math.inf,
             lo_open: bool = False, hi_open: bool = False, allow_inf: bool = False) -> float:
-    lo_sign = ">" if lo_open else ">="
-    hi_sign = "<" if hi_open else "<="
-    parts = []
-    if lo > -math.inf:
-        parts.append(f"{lo_sign} {lo:g}")
-    if hi < math.inf:
-        parts.append(f"{hi_sign} {hi:g}")
-    allowed = "a number " + " and ".join(parts) if parts else "a number"
+    allowed = number_text(lo, hi, lo_open, hi_open)
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise ScenarioError(name, value, allowed)
     try:
@@ -74,7 +63,7 @@ def _number(name: str, value, lo: float = -math.inf, hi: float = math.inf,
 
 
 def _integer(name: str, value, lo: int, hi: int) -> int:
-    allowed = f"a whole number from {lo} to {hi}"
+    allowed = whole_text(lo, hi)
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise ScenarioError(name, value, allowed)
     if isinstance(value, float) and not (math.isfinite(value) and value.is_integer()):
@@ -83,6 +72,15 @@ def _integer(name: str, value, lo: int, hi: int) -> int:
     if not lo <= v <= hi:
         raise ScenarioError(name, value, allowed)
     return v
+
+
+def _ranged(path: str, name: str, value):
+    """`value` checked against the range of key `path` of the key table; `name` is
+    the field the message names (e.g. path 'layer.cells', name 'layer.right.cells')."""
+    r = limits(path)
+    if r.whole:
+        return _integer(name, value, int(r.lo), int(r.hi))
+    return _number(name, value, r.lo, r.hi, lo_open=r.lo_open, hi_open=r.hi_open, allow_inf=r.allow_inf)
 
 
 def _choice(name: str, value, choices) -> str:
@@ -128,12 +126,12 @@ class Source:
     line: str = ""
 
     def __post_init__(self):
-        _set(self, "x", _integer("source.x", self.x, 0, 1_000_000))
-        _set(self, "y", _integer("source.y", self.y, 0, 1_000_000))
+        _set(self, "x", _ranged("source.x", "source.x", self.x))
+        _set(self, "y", _ranged("source.y", "source.y", self.y))
         _set(self, "f_max", parse_frequency("source.f_max", self.f_max))
         _set(self, "f_min", parse_frequency("source.f_min", self.f_min))
         _choice("source.waveform", self.waveform, WAVEFORMS)
-        _set(self, "amplitude", _number("source.amplitude", self.amplitude, 0.0, 1e12, lo_open=True))
+        _set(self, "amplitude", _ranged("source.amplitude", "source.amplitude", self.amplitude))
         _choice("source.line", self.line, LINE_AXES)
         design_pulse(self.waveform, self.f_min, self.f_max)  # validates the band
 
@@ -153,8 +151,8 @@ class Probe:
     def __post_init__(self):
         if not isinstance(self.name, str) or not self.name.strip() or len(self.name) > MAX_NAME_CHARS:
             raise ScenarioError("probe.name", self.name, f"a non-empty text of at most {MAX_NAME_CHARS} characters")
-        _set(self, "x", _integer(f"probe[{self.name}].x", self.x, 0, 1_000_000))
-        _set(self, "y", _integer(f"probe[{self.name}].y", self.y, 0, 1_000_000))
+        _set(self, "x", _ranged("probes.x", f"probe[{self.name}].x", self.x))
+        _set(self, "y", _ranged("probes.y", f"probe[{self.name}].y", self.y))
 
 
 @dataclass(frozen=True)
@@ -177,13 +175,13 @@ class Block:
     def __post_init__(self):
         label = f"block[{self.name}]" if isinstance(self.name, str) and 0 < len(self.name) <= MAX_NAME_CHARS else "block"
         for key in ("x0", "x1", "y0", "y1"):
-            _set(self, key, _number(f"{label}.{key}", getattr(self, key), allow_inf=True))
+            _set(self, key, _ranged(f"blocks.{key}", f"{label}.{key}", getattr(self, key)))
         if not self.x0 < self.x1:
             raise ScenarioError(f"{label}.x1", self.x1, f"> x0 = {self.x0:g}")
         if not self.y0 < self.y1:
             raise ScenarioError(f"{label}.y1", self.y1, f"> y0 = {self.y0:g}")
-        _set(self, "eps_r", _number(f"{label}.eps_r", self.eps_r, 1.0, 1e4))
-        _set(self, "sigma", _number(f"{label}.sigma", self.sigma, 0.0, 1e8))
+        _set(self, "eps_r", _ranged("blocks.eps_r", f"{label}.eps_r", self.eps_r))
+        _set(self, "sigma", _ranged("blocks.sigma", f"{label}.sigma", self.sigma))
         if not isinstance(self.name, str) or len(self.name) > MAX_NAME_CHARS:
             raise ScenarioError(f"{label}.name", self.name, f"a text of at most {MAX_NAME_CHARS} characters")
 
@@ -261,20 +259,19 @@ class Side:
     def __post_init__(self):
         p = self.label
         _choice(f"{p}.kind", self.kind, SIDE_KINDS)
-        _set(self, "cells", _integer(f"{p}.cells", self.cells, 1, 500))
-        _set(self, "order", _number(f"{p}.order", self.order, 0.0, 20.0, lo_open=True))
+        _set(self, "cells", _ranged("layer.cells", f"{p}.cells", self.cells))
+        _set(self, "order", _ranged("layer.order", f"{p}.order", self.order))
         if self.sigma_ratio is not None and self.sigma_max is not None:
             raise ScenarioError(f"{p}.sigma_max", self.sigma_max,
                                 "absent when sigma_ratio is given (give one of the two)")
         if self.sigma_ratio is not None:
-            _set(self, "sigma_ratio", _number(f"{p}.sigma_ratio", self.sigma_ratio, 0.0, 1000.0))
+            _set(self, "sigma_ratio", _ranged("layer.sigma_ratio", f"{p}.sigma_ratio", self.sigma_ratio))
         if self.sigma_max is not None:
-            _set(self, "sigma_max", _number(f"{p}.sigma_max", self.sigma_max, 0.0, 1e12))
+            _set(self, "sigma_max", _ranged("layer.sigma_max", f"{p}.sigma_max", self.sigma_max))
         if self.sigma_ratio is None and self.sigma_max is None:
             _set(self, "sigma_ratio", 1.0)
-        _set(self, "kappa_max", _number(f"{p}.kappa_max", self.kappa_max, 1.0, 1000.0))
-        _set(self, "alpha_max", _number(f"{p}.alpha_max", self.alpha_max, 0.0, 1e6))
-        _set(self, "alpha_order", _number(f"{p}.alpha_order", self.alpha_order, 0.0, 20.0))
+        for name in ("kappa_max", "alpha_max", "alpha_order"):
+            _set(self, name, _ranged(f"layer.{name}", f"{p}.{name}", getattr(self, name)))
         if self.profile is not None and not isinstance(self.profile, Profile):
             raise ScenarioError(f"{p}.profile", self.profile, "a Profile table")
 
@@ -349,14 +346,10 @@ class Scenario:
     def __post_init__(self):
         _set(self, "dx", parse_length("dx", self.dx))
         _set(self, "dy", parse_length("dy", self.dy))
-        for key in ("dx", "dy"):
-            _number(key, getattr(self, key), 1e-12, 1e3, lo_open=False)
-        _set(self, "nx", _integer("nx", self.nx, 2, MAX_INTERIOR_CELLS))
-        _set(self, "ny", _integer("ny", self.ny, 2, MAX_INTERIOR_CELLS))
-        _set(self, "steps", _integer("steps", self.steps, 1, MAX_STEPS))
-        _set(self, "courant", _number("courant", self.courant, 0.0, 1.0, lo_open=True))
-        _set(self, "eps_r", _number("eps_r", self.eps_r, 1.0, 1e4))
-        _set(self, "sigma", _number("sigma", self.sigma, 0.0, 1e8))
+        for name in ("dx", "dy"):
+            _ranged(name, name, getattr(self, name))
+        for name in ("nx", "ny", "steps", "courant", "eps_r", "sigma"):
+            _set(self, name, _ranged(name, name, getattr(self, name)))
         _choice("polarization", self.polarization, POLARIZATIONS)
         _choice("precision", self.precision, PRECISIONS)
         if not isinstance(self.title, str) or len(self.title) > MAX_NAME_CHARS:

@@ -266,7 +266,10 @@ def test_bad_files_give_one_line_with_key_and_line(case, command, tmp_path, caps
     (["check", DEMO, "--budget", "nan"], "--budget"),
     (["tune", DEMO, "--thickness", "6", "--target", "-50"], "not allowed with argument"),
     (["tune", DEMO, "--target", "3"], "--target"),
-    (["tune", DEMO, "--thickness", "6", "--budget", "3"], "--budget"),
+    (["tune", DEMO, "--thickness", "6", "--runs", "3"], "--runs"),
+    (["tune", DEMO, "--thickness", "6", "--budget", "20"], "use --runs"),  # check's --budget is in dB
+    (["tune", DEMO, "--budget", "20"], "use --runs"),
+    (["tune", DEMO, "--thickness", "6", "--budget"], "use --runs"),
     (["tune", DEMO, "--thickness", "6", "--write", DEMO], "the scenario itself"),
     (["export", DEMO, "--out", DEMO], "is a file"),
 ])
@@ -365,7 +368,7 @@ def test_sweep_on_a_local_dask_cluster(tmp_path):
 
 def test_tune_a_thickness_and_write_it_back(tmp_path, capsys):
     out_toml = tmp_path / "tuned.toml"
-    code, out, _ = _run(["tune", DEMO, "--thickness", "6", "--budget", "10", "--write", out_toml,
+    code, out, _ = _run(["tune", DEMO, "--thickness", "6", "--runs", "10", "--write", out_toml,
                          "--workers", "2"], capsys)
     assert code == 0 and f"wrote {out_toml}" in out
     tuned = load_scenario(out_toml)  # loads again...
@@ -387,7 +390,7 @@ def test_tune_a_thickness_and_write_it_back(tmp_path, capsys):
 def test_tune_ctrl_c_keeps_the_best_so_far(tmp_path):
     # the first Ctrl-C finishes the runs in progress and reports the best so far
     out_toml = tmp_path / "tuned.toml"
-    code, out, err = _signal_after(CLI + ["tune", str(DEMO), "--thickness", "6", "--budget", "5000",
+    code, out, err = _signal_after(CLI + ["tune", str(DEMO), "--thickness", "6", "--runs", "5000",
                                           "--write", str(out_toml), "--workers", "2"], "tune ", 12, signal.SIGINT)
     assert code == 130 and "best setting found before the interruption for 6 cells" in out
     assert "stopping after the runs in progress" in err and "Traceback" not in err
@@ -398,7 +401,7 @@ def test_tune_ctrl_c_keeps_the_best_so_far(tmp_path):
 
 
 def test_tune_target_finds_the_thinnest_passing_thickness(capsys):
-    code, out, err = _run(["tune", DEMO, "--target", "-45", "--budget", "8", "--min-cells", "4",
+    code, out, err = _run(["tune", DEMO, "--target", "-45", "--runs", "8", "--min-cells", "4",
                            "--max-cells", "10"], capsys)
     assert code == 0
     table = {}
@@ -415,7 +418,7 @@ def test_tune_target_finds_the_thinnest_passing_thickness(capsys):
 
 
 def test_tune_target_out_of_reach_exits_1(tmp_path, capsys):
-    code, out, _ = _run(["tune", DEMO, "--target", "-250", "--budget", "8", "--min-cells", "3",
+    code, out, _ = _run(["tune", DEMO, "--target", "-250", "--runs", "8", "--min-cells", "3",
                          "--max-cells", "4", "--write", tmp_path / "t.toml"], capsys)
     assert code == 1 and "no layer of 3..4 cells met -250 dB; nothing written" in out
     assert not (tmp_path / "t.toml").exists()

@@ -20,6 +20,19 @@ class Parser(argparse.ArgumentParser):
         self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
+class RenamedOption(argparse.Action):
+    """An option that was renamed: given, it stops the parse with one line naming
+    the new option (exit 2), whatever value follows it."""
+
+    def __init__(self, option_strings, dest, new_name: str, **kwargs):
+        self.new_name = new_name
+        super().__init__(option_strings, dest, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        parser.error(f"{option_string} is not an option of this command any more: use {self.new_name} "
+                     f"(e.g. {self.new_name} 40)")
+
+
 def ranged(kind, lo, hi, what: str):
     def convert(text: str):
         try:

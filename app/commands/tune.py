@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import math
 import time
 from pathlib import Path
@@ -10,7 +11,8 @@ from quietlayer.app import CAUTION
 
 from .common import (EXIT_FAILED, EXIT_OK, SCORE_LABELS, BadInput, StopOnInterrupt, WatchedExecutor, console, db,
                      executor_for, load, output_file, point_text, profile_sides, row_text)
-from .options import FORMATTER, SCENARIO_HELP, add_executor_options, add_score_option, paragraph, ranged
+from .options import (FORMATTER, SCENARIO_HELP, RenamedOption, add_executor_options, add_score_option, paragraph,
+                      ranged)
 
 DEFAULT_TUNE_RUNS = 40
 DEFAULT_TARGET_RUNS = 30  # per thickness
@@ -27,8 +29,8 @@ def add_parser(commands):
             "then bisection finds the thinnest."),
         epilog="examples:\n"
                "  quietlayer tune my_cell.toml --thickness 8 --write tuned.toml\n"
-               "  quietlayer tune my_cell.toml --target -60 --budget 20 --dask local:4\n\n"
-               + paragraph(f"--budget is the number of runs: {DEFAULT_TUNE_RUNS} by default with --thickness, "
+               "  quietlayer tune my_cell.toml --target -60 --runs 20 --dask local:4\n\n"
+               + paragraph(f"--runs is the number of measurements allowed: {DEFAULT_TUNE_RUNS} by default with --thickness, "
                             f"{DEFAULT_TARGET_RUNS} per thickness with --target (at least 8). With --thickness "
                             "the scenario's own grading at that thickness is one of the runs, so the result is "
                             "never worse than it. Ctrl-C (or SIGTERM) lets the runs in progress finish and keeps "
@@ -41,8 +43,11 @@ def add_parser(commands):
                       metavar="CELLS", help="tune a layer of this many cells")
     goal.add_argument("--target", type=ranged(float, -300.0, -1e-9, "a number of dB below 0, down to -300"),
                       metavar="DB", help="find the thinnest tuned layer whose worst peak error is at or below DB")
-    tune.add_argument("--budget", type=ranged(int, 8, 100_000, "a whole number of runs from 8 to 100000"),
-                      metavar="RUNS", help="runs allowed (per thickness with --target)")
+    tune.add_argument("--runs", type=ranged(int, 8, 100_000, "a whole number of runs from 8 to 100000"),
+                      metavar="N", help=f"runs allowed (default {DEFAULT_TUNE_RUNS}; {DEFAULT_TARGET_RUNS} per "
+                                        "thickness with --target)")
+    # --budget is check's limit in dB; given to tune it is refused, pointing at --runs, rather than read as runs
+    tune.add_argument("--budget", nargs="?", action=RenamedOption, new_name="--runs", help=argparse.SUPPRESS)
     tune.add_argument("--min-cells", type=ranged(int, 1, 500, "a whole number of cells from 1 to 500"),
                       default=4, metavar="CELLS", help="thinnest layer tried with --target (default 4)")
     tune.add_argument("--max-cells", type=ranged(int, 1, 500, "a whole number of cells from 1 to 500"),
@@ -134,7 +139,7 @@ def run(args) -> int:
         executor = WatchedExecutor(executor_for(args), stop, on_result)
         try:
             if args.thickness is not None:
-                budget = args.budget or DEFAULT_TUNE_RUNS
+                budget = args.runs or DEFAULT_TUNE_RUNS
                 console.note(f"quietlayer: tuning a {args.thickness}-cell layer of {args.scenario} with "
                              f"{budget} runs on {executor.description}")
 
@@ -146,7 +151,7 @@ def run(args) -> int:
                                     start=start, progress=on_run)
                 console.clear()
                 return _report_tune(args, s, result, write, stop, started)
-            budget = args.budget or DEFAULT_TARGET_RUNS
+            budget = args.runs or DEFAULT_TARGET_RUNS
             console.note(f"quietlayer: looking for the thinnest layer of {args.scenario} with "
                          f"{SCORE_LABELS[args.score]} <= "
                          f"{args.target:g} dB, {args.min_cells}..{args.max_cells} cells, {budget} runs per "

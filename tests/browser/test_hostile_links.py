@@ -97,3 +97,59 @@ def test_hostile_links_are_refused_and_others_are_served(browser, logged_server)
     assert max(answers) < 1.0
     time.sleep(1.0)  # closed tabs: let the server notice
     assert not log_trouble(logged_server, log_start), log_trouble(logged_server, log_start)[:10]
+
+
+SESSION_END_S = 22.0  # Bokeh ends a session 15 s after its tab closed; serve checks every 5 s
+
+
+def test_closed_tabs_leave_no_traceback(browser, logged_server):
+    """Tabs closed at every stage: after the first result, mid-run, during the
+    late-time check, mid-sweep and mid-3D-run.  Results still on their way and
+    the end of each session (which stops its workers) leave nothing in the log."""
+    url = logged_server.url
+    log_start = logged_server.log_path.stat().st_size
+
+    def visit(until, query: str = "") -> None:
+        context, refused = new_context(browser, url)
+        try:
+            visitor = Dashboard(context.new_page(), url)
+            visitor.page.goto(url + query)
+            visitor.wait_first_result()
+            until(visitor)
+            assert not refused
+        finally:
+            context.close()
+
+    def after_the_figures(v: Dashboard):
+        v.wait_idle()
+        v.wait_figures()
+
+    def mid_run(v: Dashboard):
+        v.settle()
+        v.press_slider("Grading order m", "ArrowRight", 3)
+        v.wait_for("a run in progress", v.busy, bool)  # closed while it runs
+
+    def during_the_late_check(v: Dashboard):
+        v.wait_for("the late-time check to run", lambda: v.card("late"), lambda t: t == "checking…", timeout=120)
+
+    def mid_sweep(v: Dashboard):
+        v.settle()
+        v.open_tab("Sweep")
+        v.page.get_by_role("button", name="Run sweep").click()
+        v.wait_for("the sweep to start", lambda: v.page.get_by_role("button", name="Cancel").first.is_enabled(),
+                   bool)
+
+    def mid_3d_run(v: Dashboard):
+        v.settle()
+        v.open_tab("Confirm in 3D")
+        v.page.get_by_role("button", name="Confirm in 3D").click()
+        v.page.wait_for_timeout(1500)
+
+    for until in (after_the_figures, mid_run, mid_sweep, mid_3d_run):
+        visit(until)
+    visit(during_the_late_check, "?nx=300&ny=300")  # a larger grid: its late-time check lasts seconds
+    time.sleep(SESSION_END_S)  # every closed tab's session ends (and page.close() runs) meanwhile
+    trouble = log_trouble(logged_server, log_start)
+    assert not trouble, trouble[:10]
+    log = logged_server.log_path.read_bytes()[log_start:].decode("utf-8", errors="replace")
+    assert "WARNING" not in log, log[-2000:]  # not even Bokeh's notice of a message a closed tab missed
