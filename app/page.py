@@ -38,6 +38,7 @@ from quietlayer.engine.measure import measure, late_time_check
 from . import CAUTION
 from .confirm3d_view import Confirm3DView
 from .figures import KEYS as FIGURES, LiveFigures, best_frame, finite_or_dash
+from .pick_view import PickView
 from .sweep_view import SweepView
 from .units import format_frequency, format_length, snap
 
@@ -114,6 +115,7 @@ class QuietlayerPage:
         self._set_widgets_from(self.base)
         self._make_plots()
         self.sweep = SweepView(self)
+        self.pick = PickView(self)
         self.confirm3d = Confirm3DView(self._current, self._call_soon, lambda: self.result)
         self._layout()
         self._watch()
@@ -295,7 +297,8 @@ class QuietlayerPage:
         profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(fields, curves, profile_row, sizing_mode="stretch_width")),
-                            ("Sweep", self.sweep.panel), ("Confirm in 3D", self.confirm3d.panel),
+                            ("Sweep", self.sweep.panel), ("Pick for me", self.pick.panel),
+                            ("Confirm in 3D", self.confirm3d.panel),
                             dynamic=False, sizing_mode="stretch_width")
         self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, self.tabs, caution,
                               sizing_mode="stretch_width", stylesheets=[STYLE])
@@ -656,6 +659,7 @@ class QuietlayerPage:
         with self._lock:
             self.generation += 1  # a late-time check still running sees it and stops
         self.sweep.close()
+        self.pick.close()
         self.confirm3d.close()
         self.measure_pool.shutdown(wait=False, cancel_futures=True)
         self.late_pool.shutdown(wait=False, cancel_futures=True)
