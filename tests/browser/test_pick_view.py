@@ -146,6 +146,13 @@ def test_cancel_keeps_the_best_so_far(dashboard):
     assert len(plot["runs"]) == runs and runs < 10 * 400
     lowest = min(v for _, v in plot["runs"])
     assert re.search(r"The lowest score was (-?\d+\.\d) dB", result).group(1) == f"{lowest:.1f}"
-    assert dashboard.page.get_by_role("button", name="Load the result").is_enabled()
     dashboard.page.mouse.move(5, 5)
     dashboard.page.screenshot(path=str(REPO / "test-artifacts" / "pick-cancelled.png"), full_page=True)
+
+    # the best try so far loads, at its thickness
+    cells = int(re.search(r"dB at (\d+) cells", result).group(1))
+    before = dashboard.card("worst")
+    dashboard.page.get_by_role("button", name="Load the result").click()
+    dashboard.wait_for("the thickness to follow the result", lambda: dashboard.slider_value("Layer thickness (cells)"),
+                       lambda v: v == cells, timeout=15)
+    dashboard.wait_card_change("worst", before)
