@@ -346,6 +346,9 @@ class PickView:
                   failure: str | None):
         if generation != self.generation:
             return
+        # runs are numbered as they stand in the search's path; a cancel drops the runs still going,
+        # and the path closes the gaps they leave: so do the figures
+        rows = [dict(r, seq=k + 1) for k, r in enumerate(rows_by_seq(rows))]
         with self.page._batched():
             self.stop = None
             self.rows, self.outcome = rows, outcome
@@ -419,6 +422,15 @@ class PickView:
         self.follow_cells = True
         self.page.load_scenario(scenario)
         self.status.object += f"\n\nLoaded {what} into the controls; the headline and figures re-measure it."
+        # a control that cannot hold the value exactly (its range, its steps) measures what it shows
+        p, found = self.page, layer_setting(scenario)
+        held = {"cells": p.w_cells, "order": p.w_order, "sigma_ratio": p.w_ratio, "kappa_max": p.w_kappa,
+                "alpha_max": p.w_alpha, "alpha_order": p.w_alpha_order}
+        moved = [f"{SWEEP_LABELS[k]} {w.value:.4g} for {found[k]:.4g}" for k, w in held.items()
+                 if not math.isclose(w.value, found[k], rel_tol=1e-9, abs_tol=1e-12)]
+        if moved:
+            self.status.object += (" The controls hold " + ", ".join(moved) + ", so the headline measures "
+                                   "that setting, not exactly the one found.")
 
     # --- the figures ---------------------------------------------------------------------
     def _make_figures(self):
@@ -432,11 +444,12 @@ class PickView:
             self.src_stage[stage] = ColumnDataSource(self._empty_points())
             renderers.append(self.fig_runs.scatter("seq", "score", source=self.src_stage[stage], marker=marker,
                                                    size=8, color=color))
-            items.append(LegendItem(label=value(label.split()[-1]), renderers=[renderers[-1]]))
+            items.append(LegendItem(label=value(label.split()[-1]), renderers=[renderers[-1]], visible=False))
         self.src_bad = ColumnDataSource(self._empty_points())
         renderers.append(self.fig_runs.scatter("seq", "score", source=self.src_bad, marker="x", size=9,
                                                color=NOT_MEASURED, line_width=2))
-        items.append(LegendItem(label=value("not measured"), renderers=[renderers[-1]]))
+        items.append(LegendItem(label=value("not measured"), renderers=[renderers[-1]], visible=False))
+        self.legend_items = dict(zip(list(STAGE_STYLE) + ["bad"], items))  # shown once they have a run
         self.src_best = ColumnDataSource({"x": [], "y": []})
         best = self.fig_runs.step("x", "y", source=self.src_best, mode="after", color="black", line_width=1.5)
         items.append(LegendItem(label=value("best so far"), renderers=[best]))
@@ -520,6 +533,10 @@ class PickView:
             self.src_stage[stage].data = columns([r for r in ok if r["stage"] == stage])
         bad = [r for r in rows if not measured(r)]
         self.src_bad.data = columns(bad)
+        for key, item in self.legend_items.items():
+            has = bool(bad) if key == "bad" else any(r["stage"] == key for r in ok)
+            if item.visible != has:
+                item.visible = has
         # best so far, one line per thickness (a gap where the thickness changes)
         xs, ys, labels = [], [], {"x": [], "y": [], "text": []}
         best, cells = math.inf, None
