@@ -21,7 +21,7 @@ from quietlayer.engine.budget import VISITOR_BUDGET, check_work
 from quietlayer.engine.defaults import angle_probes
 from quietlayer.engine.verdict import DEFAULT_BUDGET_DB
 
-from .units import format_frequency, format_length, snap
+from .units import format_frequency, format_length
 
 SIDE_NAMES = ["left", "right", "bottom", "top"]
 SOURCE_GAP = 12  # cells between the source and the right face in the bench layout
@@ -95,14 +95,16 @@ class Controls:
             side.sigma_max / sigma_opt(side.order, s.dx, s.eps_r)
         values = {
             self.w_cells: int(np.clip(side.cells, self.w_cells.start, self.w_cells.end)),
-            self.w_order: float(np.clip(snap(side.order, 0.1), 1.0, 6.0)),
-            self.w_ratio: float(np.clip(snap(ratio, 0.05), 0.05, 5.0)),
-            self.w_kappa: float(np.clip(snap(side.kappa_max, 0.5), 1.0, 30.0)),
-            self.w_alpha: float(np.clip(snap(side.alpha_max, 0.005), 0.0, 1.0)),
-            self.w_alpha_order: float(np.clip(snap(side.alpha_order, 0.1), 0.0, 4.0)),
+            # a slider holds an off-step value as given (it draws it on its steps), so a link
+            # written from the controls carries the loaded value
+            self.w_order: float(np.clip(side.order, 1.0, 6.0)),
+            self.w_ratio: float(np.clip(ratio, 0.05, 5.0)),
+            self.w_kappa: float(np.clip(side.kappa_max, 1.0, 30.0)),
+            self.w_alpha: float(np.clip(side.alpha_max, 0.0, 1.0)),
+            self.w_alpha_order: float(np.clip(side.alpha_order, 0.0, 4.0)),
             self.w_sides: [n for n in SIDE_NAMES if getattr(s.boundary, n).kind == "cpml"],
             self.w_cell: format_length(s.dx),
-            self.w_courant: float(np.clip(snap(s.courant, 0.01), 0.1, 1.0)),
+            self.w_courant: float(np.clip(s.courant, 0.1, 1.0)),
             self.w_eps: float(s.eps_r),
             self.w_sigma_host: float(s.sigma),
             self.w_pol: s.polarization,

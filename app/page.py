@@ -42,6 +42,7 @@ from .confirm3d_view import Confirm3DView
 from .controls import CUSTOM, Controls, first_profile
 from .figures import KEYS as FIGURES, LiveFigures, best_frame
 from .headline import STYLE, HeadlineState, headline_html, status_text, waiting_html
+from .pick_view import PickView
 from .sweep_view import SweepView
 
 PAGE_PARTS = frozenset({"probes", "spectra", "angles", "global", "snapshots"})
@@ -109,6 +110,7 @@ class QuietlayerPage:
         self._set_widgets_from(self.base)
         self._make_plots()
         self.sweep = SweepView(self)
+        self.pick = PickView(self)
         self.confirm3d = Confirm3DView(self._current, self._call_soon, lambda: self.result)
         self._layout()
         self._watch()
@@ -213,7 +215,8 @@ class QuietlayerPage:
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(self.stale_note, fields, curves, profile_row,
                                                   sizing_mode="stretch_width")),
-                            ("Sweep", self.sweep.panel), ("Confirm in 3D", self.confirm3d.panel),
+                            ("Sweep", self.sweep.panel), ("Pick for me", self.pick.panel),
+                            ("Confirm in 3D", self.confirm3d.panel),
                             dynamic=False, sizing_mode="stretch_width")
         run_row = pn.Row(self.progress, self.progress_text, self.w_cancel, sizing_mode="stretch_width")
         self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, run_row, self.tabs,
@@ -666,6 +669,7 @@ class QuietlayerPage:
         with self._lock:
             self.generation += 1  # a run or late-time check still going sees it and stops
         self.sweep.close()
+        self.pick.close()
         self.confirm3d.close()
         self.measure_pool.shutdown(wait=False, cancel_futures=True)
         self.late_pool.shutdown(wait=False, cancel_futures=True)

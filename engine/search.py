@@ -2,12 +2,15 @@
 
     best = tune_layer(base, cells=10, budget=40)       # best.point, best.row, best.runs
     thin = thinnest_layer(base, target_db=-60.0)       # thin.cells, thin.tune
+    layer_setting(best.scenario)                       # the tuned layer in words and S/m
 
 tune_layer works in two stages, both on the sweep machinery: a Latin-
 hypercube sample of the free parameters (scipy.stats.qmc), measured in
 parallel, then scipy.optimize.minimize (Nelder-Mead, bounded) from the best
 sample.  Every measurement counts against the budget, repeats are looked up,
-and a point that is invalid or diverges scores PENALTY_DB.
+and a point that is invalid or diverges scores PENALTY_DB.  Both take
+progress callbacks called after every run, which may stop the search (the
+best setting so far is kept, and the result says it was stopped).
 """
 
 from __future__ import annotations
@@ -20,6 +23,7 @@ from scipy.optimize import minimize
 from scipy.stats import qmc
 
 from .errors import ScenarioError
+from .layer import resolved_sigma_max, side_cell, sigma_opt
 from .scenario import SIDES, Scenario
 from .sweep import SCORES, LocalPool, apply_point, run_sweep
 from .units import EPS0
@@ -81,7 +85,8 @@ class TuneResult:
     row: dict  # its sweep row (every score)
     scenario: Scenario  # the base with the best layer on it
     runs: int
-    path: list = field(default_factory=list)  # every row measured, in order, with its 'stage'
+    path: list = field(default_factory=list)  # every row measured, in order, with its 'stage' and 'run'
+    stopped: bool = False  # the progress callback stopped the search before its budget or convergence
 
     @property
     def value(self) -> float:
@@ -97,6 +102,7 @@ class ThinnestResult:
     tune: TuneResult | None
     tried: dict  # cells -> TuneResult
     runs: int
+    stopped: bool = False  # the progress callback stopped the search
 
     @property
     def met(self) -> bool:
@@ -121,14 +127,56 @@ def current_cells(base: Scenario) -> int:
     return max(s.cells for s in sides)
 
 
+def _first_layer(s: Scenario) -> tuple[str, object]:
+    current_cells(s)  # at least one CPML side, or a clear error
+    name = next(n for n in SIDES if getattr(s.boundary, n).kind == "cpml")
+    return name, getattr(s.boundary, name)
+
+
+def layer_setting(s: Scenario) -> dict:
+    """The layer of the first CPML side as numbers: cells, order, sigma_ratio,
+    sigma_max and sigma_opt (S/m), kappa_max, alpha_max (S/m), alpha_order."""
+    name, side = _first_layer(s)
+    cell = side_cell(s, name)
+    smax = resolved_sigma_max(side, cell, s.eps_r)
+    opt = sigma_opt(side.order, cell, s.eps_r)
+    return {"side": name, "cells": side.cells, "order": side.order, "sigma_ratio": smax / opt, "sigma_max": smax,
+            "sigma_opt": opt, "kappa_max": side.kappa_max, "alpha_max": side.alpha_max,
+            "alpha_order": side.alpha_order}
+
+
+def start_point(s: Scenario, free=FREE_DEFAULT) -> dict:
+    """The scenario's own setting of the free parameters (its first CPML
+    side), clipped into the search ranges: passed as `start`, the search
+    measures it, so its result is never worse than the scenario's layer."""
+    setting = layer_setting(s)
+    return {b.name: min(max(setting[b.name], b.lo), b.hi) for b in default_bounds(s, free)}
+
+
+def max_thicknesses(cells_range=(4, 40)) -> int:
+    """The most thicknesses thinnest_layer can tune in cells_range: the
+    growth steps up to the first passing one, then bisection of the gap
+    below it (ceil(log2(gap)) steps at most)."""
+    lo, hi = cells_range
+    grown, fail, cells = [], lo - 1, lo
+    worst = 0
+    while True:
+        grown.append(cells)
+        worst = max(worst, len(grown) + max(0, math.ceil(math.log2(cells - fail)) if cells - fail > 1 else 0))
+        if cells == hi:
+            return worst
+        fail, cells = cells, min(hi, max(cells + 1, round(cells * 1.5)))
+
+
 def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, score: str = "worst_peak_db",
                free=FREE_DEFAULT, bounds: list[Bound] | None = None, executor=None, start: dict | None = None,
                progress=None, seed: int = 0) -> TuneResult:
     """Minimise `score` over the free layer parameters at a fixed thickness.
 
     budget: measurements at most (>= 8); start: a point to include (e.g. the
-    best of a neighbouring thickness); progress(runs, budget, row) may return
-    False to stop early with the best so far.
+    best of a neighbouring thickness); progress(runs, budget, row) after each
+    run (row with its 'stage', 'sample' or 'refine', and 'run', its number in
+    the result's path) may return False to stop early with the best so far.
     """
     if score not in SCORES:
         raise ScenarioError("score", score, "one of " + ", ".join(SCORES))
@@ -152,13 +200,17 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
         fresh = list({tuple(p.values()): p for p in fresh}.values())[: max(0, budget - len(path))]
         if fresh and not stopped:
             def report(done, total, index, row):
-                return None if progress is None else progress(len(path) + done, budget, row)
+                nonlocal stopped
+                if progress is not None and progress(len(path) + done, budget,
+                                                     dict(row, stage=stage, run=len(path) + index + 1)) is False:
+                    stopped = True  # also when it was this batch's last run
+                    return False
+                return None
             table = run_sweep(s, fresh, executor, progress=report)
             for i in sorted(table.rows):
                 row = dict(table.rows[i], stage=stage, run=len(path) + 1)
                 seen[tuple(fresh[i].values())] = row
                 path.append(row)
-            stopped = stopped or not table.complete
         return [seen.get(tuple(p.values())) for p in points]
 
     try:
@@ -194,7 +246,7 @@ def tune_layer(base: Scenario, cells: int | None = None, *, budget: int = 40, sc
             executor.close()
     best_row = min(path, key=lambda r: _score_of(r, score))
     return TuneResult(cells=cells, score=score, point=dict(best_row["point"]), row=best_row,
-                      scenario=apply_point(s, best_row["point"]), runs=len(path), path=path)
+                      scenario=apply_point(s, best_row["point"]), runs=len(path), path=path, stopped=stopped)
 
 
 class _StopSearch(Exception):
@@ -202,7 +254,8 @@ class _StopSearch(Exception):
 
 
 def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), budget: int = 30,
-                   score: str = "worst_peak_db", free=FREE_DEFAULT, executor=None, progress=None) -> ThinnestResult:
+                   score: str = "worst_peak_db", free=FREE_DEFAULT, executor=None, progress=None,
+                   run_progress=None) -> ThinnestResult:
     """The thinnest layer whose tuned `score` is at or below target_db.
 
     Thicknesses grow by about 1.5x from cells_range[0] until one passes, then
@@ -210,7 +263,10 @@ def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), bud
     less: an assumption checked by the tests on the default bench, not a
     law).  Each thickness is tuned with `budget` runs, starting from the
     best setting of the last thickness tried.  progress(cells, result) after
-    each thickness; return False to stop.
+    each thickness, run_progress(cells, runs, budget, row) after each run
+    (runs: of this thickness; row as for tune_layer); either may return False
+    to stop.  A stopped search reports the thinnest thickness tried so far
+    that met the target, if any.
     """
     if not isinstance(target_db, (int, float)) or not math.isfinite(target_db) or target_db >= 0:
         raise ScenarioError("target", target_db, "a reflection target in dB below 0")
@@ -221,14 +277,20 @@ def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), bud
     executor = executor or LocalPool()
     tried: dict[int, TuneResult] = {}
     last_point: dict | None = None
+    stopped = False
 
     def tuned(cells: int) -> TuneResult:
-        nonlocal last_point
+        nonlocal last_point, stopped
         if cells not in tried:
+            each_run = None if run_progress is None else \
+                (lambda runs, total, row: run_progress(cells, runs, total, row))
             tried[cells] = tune_layer(base, cells, budget=budget, score=score, free=free, executor=executor,
-                                      start=last_point)
+                                      start=last_point, progress=each_run)
             last_point = tried[cells].point
-            if progress is not None and progress(cells, tried[cells]) is False:
+            stopped = tried[cells].stopped
+            if not stopped and progress is not None:
+                stopped = progress(cells, tried[cells]) is False
+            if stopped:
                 raise _StopSearch
         return tried[cells]
 
@@ -251,10 +313,11 @@ def thinnest_layer(base: Scenario, target_db: float, *, cells_range=(4, 40), bud
             else:
                 fail = mid
     except _StopSearch:
-        pass
+        # a tuned layer that met the target did so, stopped or not: the thinnest of those
+        found = min((c for c, t in tried.items() if t.value <= target_db), default=None)
     finally:
         if own:
             executor.close()
     runs = sum(t.runs for t in tried.values())
     return ThinnestResult(target_db=float(target_db), cells=found, tune=tried.get(found) if found else None,
-                          tried=dict(sorted(tried.items())), runs=runs)
+                          tried=dict(sorted(tried.items())), runs=runs, stopped=stopped)

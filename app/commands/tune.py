@@ -60,19 +60,9 @@ def add_parser(commands):
 
 def _start_point(s) -> dict | None:
     """The scenario's own setting (its first CPML side), clipped into the search ranges."""
-    from quietlayer.engine.layer import resolved_sigma_max, side_cell, sigma_opt
-    from quietlayer.engine.scenario import SIDES
-    from quietlayer.engine.search import default_bounds
+    from quietlayer.engine.search import start_point
 
-    for name in SIDES:
-        side = getattr(s.boundary, name)
-        if side.kind == "cpml":
-            cell = side_cell(s, name)
-            values = {"order": side.order,
-                      "sigma_ratio": resolved_sigma_max(side, cell, s.eps_r) / sigma_opt(side.order, cell, s.eps_r),
-                      "kappa_max": side.kappa_max, "alpha_max": side.alpha_max}
-            return {b.name: min(max(values[b.name], b.lo), b.hi) for b in default_bounds(s)}
-    return None
+    return start_point(s)
 
 
 def _tuned_lines(result) -> list[str]:
