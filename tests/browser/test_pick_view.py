@@ -111,6 +111,8 @@ def test_smallest_search_states_and_loads_the_best_layer(dashboard):
     shown = parse_db(dashboard.wait_card_change("worst", before))
     dashboard.settle()
     assert math.isfinite(shown) and shown < parse_db(before), (before, shown)
+    # the controls keep the found values exactly (not the sliders' steps): the same score comes back
+    assert dashboard.db("worst") == pytest.approx(stated, abs=0.051), (stated, dashboard.card("worst"))
     assert "Loaded the best 10-cell layer into the controls" in status(dashboard)
 
     dashboard.page.mouse.move(5, 5)
