@@ -3,7 +3,7 @@
 Moving a control rebuilds the scenario, and the measurement runs in a worker
 thread (the numba kernels release the GIL) so the page stays responsive.  A
 burst of changes is coalesced: while a run is going, further changes only
-bump a generation counter; a run that a newer setting has overtaken is
+bump a generation counter; a long run that a newer setting has overtaken is
 cancelled at its next progress call, the newest parameters are run next, and
 a result whose generation is stale is never shown.  Until a figure shows the
 setting in the controls it is marked as the previous one.  The 20,000-step
@@ -54,6 +54,8 @@ LATE_CHECK_REST_S = 0.8  # the late-time check starts once the controls have res
                          # user tunes, both cores stay free for the runs they are waiting for
 PROGRESS_AFTER_S = 1.0  # a run taking longer than this shows its progress, an estimate and Cancel
 PROGRESS_EVERY_S = 0.25  # ... refreshed at most this often
+OVERTAKEN_AFTER_S = 0.3  # a run a newer setting has overtaken stops once it has taken this long: a short
+                         # one (a dragged slider's) is let finish, or a drag would never show a result
 STALE_STYLE = {"opacity": "0.35", "filter": "grayscale(0.7)"}  # a figure still showing the previous setting
 
 NOTES = {
@@ -413,8 +415,8 @@ class QuietlayerPage:
         self.message.visible = False
         self.controls.mark_invalid(None)
         self.controls.w_sigma_abs.object = self.controls.sigma_text(s)
-        with self._batched():
-            self._mark_stale(FIGURES)
+        with self._batched():  # a dragged slider's spectrum follows the handle: it is not faded meanwhile
+            self._mark_stale(FIGURES if full else self.stale | (set(FIGURES) - {"spectrum"}))
         with self._lock:
             start = not self.running
             self.running = True
@@ -429,9 +431,9 @@ class QuietlayerPage:
         shown = [0.0]
 
         def progress(stage, step, total):
-            if generation != self.generation or self.cancelled == generation:
-                return False
             now = time.perf_counter() - t0
+            if self.cancelled == generation or (generation != self.generation and now > OVERTAKEN_AFTER_S):
+                return False
             if now > PROGRESS_AFTER_S and now - shown[0] > PROGRESS_EVERY_S:
                 shown[0] = now
                 self._call_soon(self._show_progress, generation, stage, step, total, now)
