@@ -343,6 +343,19 @@ def test_check_3d_json_scores_exit_codes(tmp_path, monkeypatch, capsys):
     assert data["timing_s"]["reference_from"] == "disk"
 
 
+def test_check_3d_late_steps_given_explicitly_are_kept():
+    # --late-steps 20000 (the 2D default's value) given on purpose must not fall back to the
+    # 3D default of 4000; only an absent option does (common practice, no source)
+    from quietlayer.app.cli import build_parser
+    from quietlayer.app.confirm3d import late_steps_3d
+    from quietlayer.engine.confirm3d import LATE_STEPS_3D
+    parse = lambda *extra: build_parser().parse_args(["check", "cell.toml", *extra])
+    assert late_steps_3d(parse("--3d", "--late-steps", "20000")) == 20_000
+    assert late_steps_3d(parse("--3d", "--late-steps", "300")) == 300
+    assert late_steps_3d(parse("--3d")) == LATE_STEPS_3D
+    assert late_steps_3d(parse("--3d", "--no-late", "--late-steps", "20000")) == 0
+
+
 def test_check_3d_text_and_bad_input(tmp_path, monkeypatch, capsys):
     from quietlayer.app.cli import main
     monkeypatch.setenv("QUIETLAYER_CACHE_DIR", str(tmp_path / "cache"))
