@@ -89,7 +89,7 @@ def light_cone_window(grid: Grid3D, step: int, steps: int, slack: int = WINDOW_S
 def _half_step_h(grid: Grid3D, win, threads: int, chunks) -> None:
     """H from n - 1/2 to n + 1/2: column loops inside a window, else whole planes."""
     if win is None:
-        args = (*grid.flat_fields, grid.cdt, *grid.h_plane_args)
+        args = (*grid.flat_fields, grid.cdt, *grid.plane_args[0])
         kernels3d.h_planes(0, grid.shape[0], *args) if threads == 1 else kernels3d.h_plane_chunks(chunks, *args)
     else:
         args = (*grid.fields, grid.cdt, *grid.h_args, win)
@@ -99,7 +99,7 @@ def _half_step_h(grid: Grid3D, win, threads: int, chunks) -> None:
 def _half_step_e(grid: Grid3D, win, threads: int, chunks) -> None:
     """E from n to n + 1: column loops inside a window, else whole planes."""
     if win is None:
-        args = (*grid.flat_fields, grid.ca, grid.cb, *grid.e_plane_args)
+        args = (*grid.flat_fields, grid.ca, grid.cb, *grid.plane_args[1])
         kernels3d.e_planes(0, grid.shape[0], *args) if threads == 1 else kernels3d.e_plane_chunks(chunks, *args)
     else:
         args = (*grid.fields, grid.ca, grid.cb, *grid.e_args, win)
@@ -164,10 +164,14 @@ def run_box(grid: Grid3D, steps: int | None = None, *, window: bool = False, ref
             win = light_cone_window(grid, n, steps)
             cells += kernels3d.window_cells(win, nxp, nyp, nzp)
             chunks = kernels3d.row_chunks(win, nxp - 1, threads)
-        _half_step_h(grid, win if window else None, threads, chunks)
-        if magnetic:
-            Hz[si, sj, sk] += wave[n]
-        _half_step_e(grid, win if window else None, threads, chunks)
+        if not window and threads == 1:
+            kernels3d.step_planes(*grid.flat_fields, grid.cdt, grid.ca, grid.cb, *grid.plane_args,
+                                  si if magnetic else -1, sj * nzp + sk, wave[n])
+        else:
+            _half_step_h(grid, win if window else None, threads, chunks)
+            if magnetic:
+                Hz[si, sj, sk] += wave[n]
+            _half_step_e(grid, win if window else None, threads, chunks)
         if not magnetic:
             Ez[si, sj, sk] += wave[n]
         if record_probes:
