@@ -16,7 +16,8 @@ pytestmark = pytest.mark.browser
 
 TAB = "Confirm in 3D"
 SPECTRUM = "3D reflection spectrum"
-RUN_S = 240.0  # the demo's confirmation takes 9 to 14 s on two idle cores; a loaded machine is slower
+RUN_S = 120.0  # the demo's confirmation takes about 2 s on two idle cores; a loaded machine is slower
+STEP = re.compile(r"3D (reference|test run|late-time check).*: step \d+ of \d+")
 
 
 def pane_text(dashboard, css_class: str) -> str:
@@ -61,9 +62,8 @@ def test_confirm_in_3d_shows_the_box_progress_cancel_and_scores(dashboard):
 
     # a run reports its progress and stops when cancelled
     run.click()
-    shown = dashboard.wait_for("progress of the reference", lambda: (status(dashboard), progress_value(dashboard)),
-                               lambda v: re.search(r"3D reference .*: step \d+ of \d+", v[0]) and v[1] > 0,
-                               timeout=RUN_S)
+    shown = dashboard.wait_for("progress of the run", lambda: (status(dashboard), progress_value(dashboard)),
+                               lambda v: STEP.search(v[0]) and v[1] > 0, timeout=RUN_S)
     assert run.is_disabled() and cancel.is_enabled(), shown
     cancel.click()
     dashboard.wait_for("the run to stop", lambda: status(dashboard), lambda t: t.startswith("Cancelled"),
@@ -77,13 +77,15 @@ def test_confirm_in_3d_shows_the_box_progress_cancel_and_scores(dashboard):
 
     def stage():
         text = status(dashboard)
-        seen.update(s for s in ("reference", "test run", "late-time") if f"3D {s}" in text)
+        seen.update(match.group(1) for match in [STEP.search(text)] if match)
         return text
 
     done = dashboard.wait_for("the 3D confirmation to finish", stage, lambda t: t.startswith("Done in"),
                               timeout=RUN_S)
-    assert "reference" in seen, (seen, done)  # the later stages may pass between two looks
-    assert re.search(r"Done in \d+\.\d s \(reference \d+\.\d s, test \d+\.\d s, late-time \d+\.\d s\)", done), done
+    assert seen, done  # some stage showed its progress (short ones may pass between two looks)
+    # the reference may come from the cancelled run, which kept it if it got that far
+    assert re.search(r"Done in \d+\.\d s \(reference (\d+\.\d s|cached), test \d+\.\d s, late-time \d+\.\d s\)",
+                     done), done
     table = dashboard.wait_for("the 3D scores", lambda: score_rows(dashboard),
                                lambda t: math.isfinite(parse_db(t.get("worst peak error", ("", ""))[1])), timeout=30)
     for label in ("worst peak error", "face centre (2D: normal incidence)", "corner", "global error", "band worst"):
