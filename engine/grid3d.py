@@ -388,9 +388,8 @@ def _plane_args(shape, ax, dtype, psi):
     ex_mask = (j >= 1) & (j < ny) & (k >= 1) & (k < nz)
     ey_mask = (j < ny) & (k >= 1) & (k < nz)
     ez_mask = (j >= 1) & (j < ny) & (k < nz)
-    h_planes = (flat(gyh * h_mask), flat(gzh * h_mask), flat(h_mask * 1.0))
-    e_planes = (flat(gyn * ex_mask), flat(gzn * ex_mask), flat(ey_mask * 1.0), flat(gzn * ey_mask),
-                flat(ez_mask * 1.0), flat(gyn * ez_mask))
+    h_planes = (flat(gyh * h_mask), flat(gzh * h_mask))
+    e_planes = (flat(gyn * ex_mask), flat(gzn * ex_mask), flat(gzn * ey_mask), flat(gyn * ez_mask))
     yz_h = (flat(pad(y.b_half, nyp)[:, None]), flat(pad(y.c_half, nyp)[:, None]),
             flat(pad(z.b_half, nzp)[None, :]), flat(pad(z.c_half, nzp)[None, :]))
     yz_e = (flat(y.b_node[:, None]), flat(y.c_node[:, None]), flat(z.b_node[None, :]), flat(z.c_node[None, :]))
