@@ -14,17 +14,15 @@ from pathlib import Path
 
 from quietlayer.app import CAUTION
 
-LATE_STEPS_2D_DEFAULT = 20_000  # the check's --late-steps default: --3d then runs its own shorter check
-
 
 def late_steps_3d(options) -> int:
-    """Late-time steps of the 3D run: none with --no-late; --late-steps when it was
-    changed from the 2D default, else the 3D default (the 3D box costs ~4x a 2D step)."""
+    """Late-time steps of the 3D run: none with --no-late; --late-steps when given
+    (whatever its value), else the 3D default (the 3D box costs ~4x a 2D step)."""
     from quietlayer.engine.confirm3d import LATE_STEPS_3D
     if getattr(options, "no_late", False):
         return 0
-    given = getattr(options, "late_steps", LATE_STEPS_2D_DEFAULT)
-    return LATE_STEPS_3D if given == LATE_STEPS_2D_DEFAULT else given
+    given = getattr(options, "late_steps", None)
+    return LATE_STEPS_3D if given is None else given
 
 
 def box_summary(box) -> dict:

@@ -61,7 +61,7 @@ class Confirm3DView:
         self.w_run = w.Button(name="Confirm in 3D", button_type="primary")
         self.w_cancel = w.Button(name="Cancel", disabled=True)
         self.progress = pn.indicators.Progress(value=0, max=300, bar_color="primary", width=300, height=14,
-                                               margin=(6, 10))
+                                               margin=(6, 10), css_classes=["ql-3d-progress"])
         self.status = pn.pane.Markdown("", sizing_mode="stretch_width", css_classes=["ql-3d-status"])
         self.box_line = pn.pane.Markdown("", sizing_mode="stretch_width", styles={"font-size": "0.85em"},
                                          css_classes=["ql-3d-box"])

@@ -40,9 +40,10 @@ MAX_HALF_WIDTH = 40
 # shorter than the 2D engine's 5.5 widths, which saves steps the reference pays
 # for in the fourth power.  Test and reference share the switch-on exactly.
 SWITCH_ON_WIDTHS = {"float32": 4.0, "float64": 5.5}
-# The windowed reference costs about (steps / 2)^4 cell updates and its grid spans
-# about steps cells per axis: 700 steps (about 50 cells per wavelength at f_max)
-# is some two minutes and 2 GB of touched float32 memory here.
+# The windowed reference costs about (steps / 2)^4 / 8 cell updates (it runs one
+# octant) and its grid spans about steps / 2 cells per axis: 700 steps (about 50
+# cells per wavelength at f_max) is some 25 s and 1.5 GB of float32 fields here
+# (scaled from the demo's 271 steps: 0.5 s).
 MAX_STEPS_3D = 700
 
 
@@ -273,14 +274,23 @@ class Grid3D:
     h_args: tuple  # everything h_rows takes after the fields and c0 dt, but the window
     e_args: tuple
     flat_fields: tuple  # the fields as (NX+1, (NY+1)(NZ+1)) views, for the whole-grid kernels
-    h_plane_args: tuple  # everything h_planes takes after the fields and c0 dt
-    e_plane_args: tuple
+    axes: list  # Axis of x, y, z
     psi: tuple
     source_node: tuple  # grid indices of the driven component
     source_coef: float
     probe_nodes: np.ndarray  # (n_probes, 3) grid indices
     interior: tuple  # (i0, i1, j0, j1, k0, k1): grid cells of the interior nodes 0..n per axis
     used: bool = False
+    _planes: tuple | None = None
+
+    @property
+    def plane_args(self) -> tuple:
+        """(h, e): what h_planes and e_planes take after the fields and c0 dt (or ca, cb).
+        Made on first use: their whole-plane y- and z-psi arrays would cost a reference
+        grid, which runs in the window, several fields' worth of memory."""
+        if self._planes is None:
+            self._planes = _plane_args(self.shape, self.axes, self.dtype, self.psi)
+        return self._planes[:2]
 
     def probe_field(self):
         Ex, Ey, Ez, Hx, Hy, Hz = self.fields
@@ -295,7 +305,7 @@ class Grid3D:
     def reset(self) -> None:
         """Zero fields and psi, unless the grid has not been run yet."""
         if self.used:
-            for a in self.fields + self.psi:
+            for a in self.fields + self.psi + (self._planes[2] if self._planes else ()):
                 a.fill(0)
         self.used = True
 
@@ -330,7 +340,6 @@ def build_grid3d(box: Box3D) -> Grid3D:
     e_args = (cast(x.g_node), cast(y.g_node), cast(z.g_node), x.map_node, y.map_node,
               np.int64(z.z_node[0]), np.int64(z.z_node[1]), cast(x.b_node), cast(x.c_node),
               cast(y.b_node), cast(y.c_node), cast(z.b_node), cast(z.c_node)) + psi_e
-    h_plane_args, e_plane_args = _plane_args(box, ax, shape, cast, psi_h, psi_e)
     flat_fields = tuple(a.reshape(shape[0], -1) for a in fields)
     offset = box.offset
     src = tuple(offset[a] + box.source[a] for a in range(3))
@@ -341,30 +350,32 @@ def build_grid3d(box: Box3D) -> Grid3D:
     source_coef = (cdt if box.source_magnetic else cb) * drive
     probe_nodes = np.array([[offset[a] + p[a] for a in range(3)] for _, p in box.probes], dtype=np.int64)
     return Grid3D(box=box, dtype=dtype, shape=shape, offset=offset, fields=fields, ca=scalar(ca), cb=scalar(cb),
-                  cdt=scalar(cdt), h_args=h_args, e_args=e_args, flat_fields=flat_fields,
-                  h_plane_args=h_plane_args, e_plane_args=e_plane_args, psi=psi_h + psi_e, source_node=src,
+                  cdt=scalar(cdt), h_args=h_args, e_args=e_args, flat_fields=flat_fields, axes=ax,
+                  psi=psi_h + psi_e, source_node=src,
                   source_coef=float(source_coef), probe_nodes=probe_nodes.reshape(-1, 3),
                   interior=tuple(v for a in range(3) for v in (offset[a], offset[a] + box.cells[a] + 1)))
 
 
-def _runs(row_map: np.ndarray) -> np.ndarray:
-    """(first row, end row, first psi row) of each contiguous run of slab rows."""
+def _y_runs(row_map: np.ndarray, s: int, first: int, last: int) -> np.ndarray:
+    """(first m, end m, 1 in a y-slab else 0) of the runs of rows first..last-1 of a plane
+    (m = j s + k), split where the rows enter or leave a y-slab."""
     runs = []
-    for j, r in enumerate(row_map):
-        if r < 0:
-            continue
-        if runs and runs[-1][1] == j:
-            runs[-1][1] = j + 1
+    for j in range(first, last):
+        slab = int(row_map[j] >= 0)
+        if runs and runs[-1][2] == slab:
+            runs[-1][1] = (j + 1) * s
         else:
-            runs.append([j, j + 1, int(r)])
+            runs.append([j * s, (j + 1) * s, slab])
     return np.array(runs, dtype=np.int64).reshape(-1, 3)
 
 
-def _plane_args(box: Box3D, ax, shape, cast, psi_h, psi_e):
-    """Arguments of the whole-grid kernels (kernels3d.h_planes, e_planes): grading
-    per (j, k), zero where a component is not updated; per-row b and c of the
-    y-slabs; psi as flat views."""
+def _plane_args(shape, ax, dtype, psi):
+    """Arguments of the whole-grid kernels (kernels3d.h_planes, e_planes) and their own
+    psi arrays: grading per (j, k), zero where a component is not updated; b and c of
+    the y- and z-slabs per (j, k), zero outside the slabs; x-psi as flat views of the
+    slab planes, y- and z-psi over whole planes."""
     x, y, z = ax
+    cast = lambda a: np.ascontiguousarray(a, dtype=dtype)
     nxp, nyp, nzp = shape
     ny, nz = nyp - 1, nzp - 1
     j = np.arange(nyp)[:, None]
@@ -377,16 +388,16 @@ def _plane_args(box: Box3D, ax, shape, cast, psi_h, psi_e):
     ex_mask = (j >= 1) & (j < ny) & (k >= 1) & (k < nz)
     ey_mask = (j < ny) & (k >= 1) & (k < nz)
     ez_mask = (j >= 1) & (j < ny) & (k < nz)
-    h_planes = (flat(gyh * h_mask), flat(gzh * h_mask), flat(h_mask * 1.0))
-    e_planes = (flat(gyn * ex_mask), flat(gzn * ex_mask), flat(ey_mask * 1.0), flat(gzn * ey_mask),
-                flat(ez_mask * 1.0), flat(gyn * ez_mask))
-    by_h, cy_h = flat(pad(y.b_half, nyp)[:, None]), flat(pad(y.c_half, nyp)[:, None])
-    by_e, cy_e = flat(y.b_node[:, None]), flat(y.c_node[:, None])
-    flat_psi = lambda arrays: tuple(a.reshape(a.shape[0], int(np.prod(a.shape[1:]))) for a in arrays)
-    h_args = (cast(x.g_half), h_planes, x.map_half, _runs(y.map_half), np.int64(z.z_half[0]),
-              np.int64(z.z_half[1]), cast(x.b_half), cast(x.c_half), by_h, cy_h,
-              cast(z.b_half), cast(z.c_half)) + flat_psi(psi_h)
-    e_args = (cast(x.g_node), e_planes, x.map_node, _runs(y.map_node), np.int64(z.z_node[0]),
-              np.int64(z.z_node[1]), cast(x.b_node), cast(x.c_node), by_e, cy_e,
-              cast(z.b_node), cast(z.c_node)) + flat_psi(psi_e)
-    return h_args, e_args
+    h_planes = (flat(gyh * h_mask), flat(gzh * h_mask))
+    e_planes = (flat(gyn * ex_mask), flat(gzn * ex_mask), flat(gzn * ey_mask), flat(gyn * ez_mask))
+    yz_h = (flat(pad(y.b_half, nyp)[:, None]), flat(pad(y.c_half, nyp)[:, None]),
+            flat(pad(z.b_half, nzp)[None, :]), flat(pad(z.c_half, nzp)[None, :]))
+    yz_e = (flat(y.b_node[:, None]), flat(y.c_node[:, None]), flat(z.b_node[None, :]), flat(z.c_node[None, :]))
+    flat_x = lambda a: a.reshape(a.shape[0], nyp * nzp)
+    whole = tuple(np.zeros((nxp, nyp * nzp), dtype) for _ in range(8))
+    s = np.int64(nzp)
+    h_args = (s, cast(x.g_half), h_planes, x.map_half, cast(x.b_half), cast(x.c_half), yz_h,
+              _y_runs(y.map_half, nzp, 0, ny), flat_x(psi[0]), flat_x(psi[1])) + whole[:4]
+    e_args = (s, cast(x.g_node), e_planes, x.map_node, cast(x.b_node), cast(x.c_node), yz_e,
+              _y_runs(y.map_node, nzp, 1, ny), flat_x(psi[6]), flat_x(psi[7])) + whole[4:]
+    return h_args, e_args, whole

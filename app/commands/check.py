@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 from quietlayer.app import CAUTION
+from quietlayer.engine.measure import LATE_STEPS
 from quietlayer.engine.run_checks import MIN_PERIODS, record_length
 from quietlayer.engine.verdict import DEFAULT_BUDGET_DB, judge
 
@@ -15,6 +16,8 @@ from ..units import format_frequency
 from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, late_time_json, layer_lines, load,
                      problem_line, shorten)
 from .options import FORMATTER, SCENARIO_HELP, decibels, paragraph, ranged
+
+DEFAULT_LATE_STEPS = LATE_STEPS  # 2D late-time check unless --late-steps is given (--3d has its own)
 
 
 def add_parser(commands):
@@ -38,7 +41,8 @@ def add_parser(commands):
     check.add_argument("--json", action="store_true", help="print the scores as one JSON object (null for no value)")
     check.add_argument("--no-late", action="store_true", help="skip the late-time stability check")
     check.add_argument("--late-steps", type=ranged(int, 100, 2_000_000, "a whole number of steps from 100 to 2000000"),
-                       default=20_000, metavar="N", help="length of the late-time check, steps (default 20000)")
+                       default=None, metavar="N",
+                       help=f"length of the late-time check, steps (default {DEFAULT_LATE_STEPS}; 4000 with --3d)")
     check.add_argument("--3d", dest="three_d", action="store_true",
                        help="confirm the layer on a small 3D box derived from the scenario (same cell, band, "
                             "host and layers; probes near a face centre, an edge and a corner); the late-time "
@@ -54,14 +58,15 @@ def run(args) -> int:
         from ..confirm3d import check_3d
         return check_3d(args.scenario, args)
 
-    s = load(args.scenario, late_steps=0 if args.no_late else args.late_steps)
+    late_steps = DEFAULT_LATE_STEPS if args.late_steps is None else args.late_steps
+    s = load(args.scenario, late_steps=0 if args.no_late else late_steps)
     if not s.probes:
         raise BadInput(f"{args.scenario}: probes: the scenario has none; check scores the layer at its probes "
                        "(add [[probes]] entries with name, x, y)")
     parts = {"probes", "global", "spectra"} | (set() if args.no_late else {"late_time"})
     t0 = time.perf_counter()
     try:
-        m = measure(s, parts=parts, late_steps=args.late_steps)
+        m = measure(s, parts=parts, late_steps=late_steps)
     except DivergenceError as exc:
         return _report_diverged(args, s, exc)
     band = m.band_worst_db
