@@ -40,7 +40,7 @@ def _alone(title: str, value: float):
     from quietlayer.engine.measure import measure
     page = QuietlayerPage()
     try:
-        widget = getattr(page, CONTROLS[title][0])
+        widget = getattr(page.controls, CONTROLS[title][0])
         widget.value = int(value) if isinstance(widget.value, int) else value
         return measure(page.scenario_from_controls(), parts=PAGE_PARTS)
     finally:
