@@ -57,6 +57,7 @@ PROGRESS_EVERY_S = 0.25  # ... refreshed at most this often
 OVERTAKEN_AFTER_S = 0.3  # a run a newer setting has overtaken stops once it has taken this long: a short
                          # one (a dragged slider's) is let finish, or a drag would never show a result
 STALE_STYLE = {"opacity": "0.35", "filter": "grayscale(0.7)"}  # a figure still showing the previous setting
+STALE_NOTE = "**Faded figures show the previous setting** until they are redrawn for the one in the controls."
 
 NOTES = {
     "fields": "**What am I looking at.** Left: |field| over the whole grid in dB of the largest incident "
@@ -142,9 +143,7 @@ class QuietlayerPage:
         self.progress = pn.indicators.Progress(value=0, max=100, width=220, visible=False)
         self.progress_text = pn.pane.Markdown("", visible=False, margin=(0, 6))
         self.w_cancel = w.Button(label="Cancel the run", button_type="warning", visible=False, width=130)
-        self.stale_note = pn.pane.Markdown("", visible=False, margin=(0, 10),
-                                           styles={"color": "#6b4e00", "background": "#fff3cd", "padding": "2px 8px",
-                                                   "border-radius": "4px"})
+        self.stale_note = pn.pane.Markdown("&nbsp;", height=26, margin=(0, 10), styles={"color": "#6b4e00"})
 
     def _url_widgets(self):
         return {**self.controls.url_widgets(), "present": self.w_present}
@@ -165,11 +164,15 @@ class QuietlayerPage:
     def _make_plots(self):
         """Bokeh figures built once per session; a result only replaces their data."""
         self.figures = LiveFigures(self.fontscale)
-        self.panes = {}
+        self.panes, self.frames = {}, {}
         for key in FIGURES:
             fixed = key in ("total", "reflected")  # the pane takes the image's own size
             self.panes[key] = pn.pane.Bokeh(self.figures.figures[key],
                                             sizing_mode="fixed" if fixed else "stretch_width")
+            # faded through a frame around the figure: a style on the figure itself has the
+            # browser lay out and redraw it
+            self.frames[key] = pn.Column(self.panes[key], margin=0,
+                                         sizing_mode=None if fixed else "stretch_width")
 
     def _redraw(self):
         """Show the current result in every figure (pin, presentation)."""
@@ -180,18 +183,12 @@ class QuietlayerPage:
         """Fade the figures in `keys` (and say so) until they show the setting in the controls."""
         keys = set(keys) & set(self.panes) if self.result is not None else set()
         for key in keys - self.stale:
-            self.panes[key].styles = STALE_STYLE
+            self.frames[key].styles = STALE_STYLE
         for key in self.stale - keys:
-            self.panes[key].styles = {}
-        if ("total" in keys) != ("total" in self.stale):
-            self.w_player.styles = STALE_STYLE if "total" in keys else {}
+            self.frames[key].styles = {}
+        if bool(keys) != bool(self.stale):  # the note keeps its height: no figure moves
+            self.stale_note.object = STALE_NOTE if keys else "&nbsp;"
         self.stale = keys
-        visible = bool(keys)
-        if visible:
-            self.stale_note.object = ("**Faded figures show the previous setting** until they are redrawn "
-                                      "for the one in the controls.")
-        if self.stale_note.visible != visible:
-            self.stale_note.visible = visible
 
     # --- layout ---------------------------------------------------------------
     def _layout(self):
@@ -206,20 +203,20 @@ class QuietlayerPage:
         self.scrubber_text = pn.pane.Markdown("Time scrubber: play, pause or drag through the run.",
                                               styles={"font-size": NOTE_SIZE[False]})
         self.scrubber = pn.Row(self.w_player, self.scrubber_text)
-        fields = pn.Column(pn.Row(self.panes["total"], pn.Spacer(width=20), self.panes["reflected"]),
+        fields = pn.Column(pn.Row(self.frames["total"], pn.Spacer(width=20), self.frames["reflected"]),
                            self.scrubber, self.notes["fields"], sizing_mode="stretch_width")
-        curves = pn.GridBox(pn.Column(self.panes["spectrum"], self.notes["spectrum"]),
-                            pn.Column(self.panes["angle"], self.notes["angle"]),
-                            pn.Column(self.panes["error"], self.notes["error"]),
-                            pn.Column(self.panes["profile0"], self.notes["profile"]),
+        curves = pn.GridBox(pn.Column(self.frames["spectrum"], self.notes["spectrum"]),
+                            pn.Column(self.frames["angle"], self.notes["angle"]),
+                            pn.Column(self.frames["error"], self.notes["error"]),
+                            pn.Column(self.frames["profile0"], self.notes["profile"]),
                             ncols=2, sizing_mode="stretch_width")
-        profile_row = pn.Row(self.panes["profile1"], self.panes["profile2"], sizing_mode="stretch_width")
+        profile_row = pn.Row(self.frames["profile1"], self.frames["profile2"], sizing_mode="stretch_width")
         # the headline stays above both tabs: a cell clicked on the sweep map is re-measured in view
         self.tabs = pn.Tabs(("Figures", pn.Column(self.stale_note, fields, curves, profile_row,
                                                   sizing_mode="stretch_width")),
                             ("Sweep", self.sweep.panel), ("Pick for me", self.pick.panel),
                             ("Confirm in 3D", self.confirm3d.panel),
-                            dynamic=False, sizing_mode="stretch_width")
+                            dynamic=True, sizing_mode="stretch_width")
         run_row = pn.Row(self.progress, self.progress_text, self.w_cancel, sizing_mode="stretch_width")
         self.main = pn.Column(top, self.engine_note, self.message, self.headline, self.status, run_row, self.tabs,
                               self.caution, sizing_mode="stretch_width", stylesheets=[STYLE])
