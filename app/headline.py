@@ -19,7 +19,10 @@ from .units import format_frequency, format_length
 STYLE = """
 :host { --ql-accent: #0072B2; }
 .ql-card { border: 1px solid #d0d7de; border-radius: 6px; padding: 6px 10px; flex: 1 1 118px; min-width: 118px;
-           max-width: 240px; background: #fafbfc; }
+           max-width: 240px; background: #fafbfc; box-sizing: border-box; height: 88px; overflow: hidden; }
+/* a fixed height: a headline that grew or shrank would move every figure below it, and the browser
+   would lay them all out and draw them again; a long note is cut at two lines (hover shows it all) */
+.ql-card .ql-sub { display: -webkit-box; -webkit-line-clamp: 2; -webkit-box-orient: vertical; overflow: hidden; }
 .ql-card .ql-label { font-size: 0.8em; color: #444; }
 .ql-card .ql-value { font-size: 1.45em; font-weight: 600; color: #111; }
 .ql-card .ql-sub { font-size: 0.75em; color: #555; }
@@ -28,7 +31,7 @@ STYLE = """
 .ql-card.ql-fail { border-color: #d1242f; background: #fff0f0; }
 .ql-card.ql-fail .ql-value { color: #b3141d; }
 .ql-present .ql-card .ql-value { font-size: 2.2em; }
-.ql-present .ql-card { min-width: 210px; max-width: none; }
+.ql-present .ql-card { min-width: 210px; max-width: none; height: 136px; }
 .ql-present .ql-card .ql-label, .ql-present .ql-card .ql-sub { font-size: 1.1em; }
 .ql-warnings.ql-present, .ql-present .ql-run-note { font-size: 1.3em; }
 .ql-warnings { margin: 6px 0 0 0; padding: 4px 10px; border-left: 4px solid #E69F00; background: #fff8e6;
@@ -42,7 +45,7 @@ STYLE = """
 def card(label: str, value: str, sub: str, key: str, tone: str = "") -> str:
     extra = f" ql-{tone}" if tone else ""
     return (f'<div class="ql-card{extra}" data-key="{key}"><div class="ql-label">{label}</div>'
-            f'<div class="ql-value" data-value="{key}">{value}</div><div class="ql-sub">{sub}</div></div>')
+            f'<div class="ql-value" data-value="{key}">{value}</div><div class="ql-sub" title="{sub}">{sub}</div></div>')
 
 
 def waiting_html(sub: str) -> str:
@@ -68,24 +71,23 @@ class HeadlineState:
 def verdict_card(v: Verdict) -> str:
     if v.passed is False:
         if math.isfinite(v.margin_db) and v.margin_db < 0:
-            sub = f"{-v.margin_db:.1f} dB above the {v.budget_db:g} dB budget"
+            sub = f"{-v.margin_db:.1f} dB above the {v.budget_db:g} dB budget"  # two lines at most (see STYLE)
         else:
             sub = v.reasons[0] if v.reasons else "see the late-time check"
         return card("verdict", "FAIL", html.escape(sub), "verdict", "fail")
-    within = f"{v.margin_db:.1f} dB within the {v.budget_db:g} dB budget"
     if v.passed is None:
-        return card("verdict", "pass so far", within + "; late-time check to come", "verdict")
-    return card("verdict", "PASS", within, "verdict", "pass")
+        return card("verdict", "pass so far", f"{v.margin_db:.1f} dB below {v.budget_db:g} dB; late-time check next",
+                    "verdict")
+    return card("verdict", "PASS", f"{v.margin_db:.1f} dB below the {v.budget_db:g} dB budget", "verdict", "pass")
 
 
 def difference_card(m: Measurement, pinned: Measurement) -> str:
     delta = m.worst_peak_db - pinned.worst_peak_db
     if abs(delta) < 0.05:
-        word = "same as A"
+        word = "the same"
     else:
-        word = f"{abs(delta):.1f} dB {'better' if delta < 0 else 'worse'} than A"
-    return card("difference to A", word, f"A: {pinned.worst_peak_db:.1f} dB, now {m.worst_peak_db:.1f} dB "
-                f"(lower is better)", "delta")
+        word = f"{abs(delta):.1f} dB {'better' if delta < 0 else 'worse'}"
+    return card("difference to A", word, f"A: {pinned.worst_peak_db:.1f} dB, now {m.worst_peak_db:.1f} dB", "delta")
 
 
 def band_worst(m: Measurement) -> tuple[float, str]:
@@ -119,7 +121,7 @@ def headline_html(h: HeadlineState) -> str:
              ("NumPy loops: first start" if m.engine != "compiled" else
               "reference cached" if m.reference_cached else "reference computed"), "runtime"),
         card("cells per wavelength", f"{s.cells_per_wavelength:.1f}",
-             f"at f_max = {format_frequency(s.source.f_max)} in the densest material (eps_r = {s.max_eps_r:g})",
+             f"at {format_frequency(s.source.f_max)} in the densest material (eps_r {s.max_eps_r:g})",
              "cpw"),
     ]
     if h.pinned is not None and math.isfinite(h.pinned.worst_peak_db) and math.isfinite(m.worst_peak_db):
@@ -141,18 +143,18 @@ def warnings_html(h: HeadlineState, present: str) -> str:
         items.append(f"<b>Changes when lengthened:</b> run {h.longer.steps} steps long, the worst peak error is "
                      f"{finite_or_dash(h.longer.worst_peak_db)} dB ({h.longer.change_db:+.1f} dB): the run ends "
                      "before the layer's echo is over; lengthen it.")
-    notes = []
     if h.longer is not None and not h.longer.changed:
-        notes.append(f"lengthened to {h.longer.steps} steps the worst peak error moves {h.longer.change_db:+.1f} dB")
-    elif h.longer is None and h.longer_note:
-        notes.append(h.longer_note)
-    if not items and not notes:
-        return ""
-    body = "".join(f"<li>{item}</li>" for item in items)
-    tail = f'<div class="ql-run-note" style="font-size:0.85em;color:#555">{"; ".join(notes)}</div>' if notes else ""
+        note = f"lengthened to {h.longer.steps} steps the worst peak error moves {h.longer.change_db:+.1f} dB"
+    else:
+        note = h.longer_note if h.longer is None else ""
+    # the note line is always there: a headline whose height changed would move every figure below it,
+    # and the browser would lay them all out and draw them again
+    tail = f'<div class="ql-run-note" style="font-size:0.85em;color:#555">{note or "&nbsp;"}</div>'
     if not items:
         return f'<div class="{present.strip()}">{tail}</div>'
-    return f'<div class="ql-warnings{present}" data-key="warnings"><ul style="margin:0;padding-left:18px">{body}</ul>{tail}</div>'
+    body = "".join(f"<li>{item}</li>" for item in items)
+    return (f'<div class="ql-warnings{present}" data-key="warnings"><ul style="margin:0;padding-left:18px">{body}'
+            f'</ul>{tail}</div>')
 
 
 def status_text(m: Measurement) -> str:

@@ -632,8 +632,8 @@ class QuietlayerPage:
             budget = float("nan")
         longer = self.longer if not isinstance(self.longer, str) else None
         longer_note = (self.longer if isinstance(self.longer, str) else
-                       "" if not self.complete or self.late is None else
-                       f"checking the same setting at {2 * m.scenario.steps} steps…")
+                       f"checking the same setting at {2 * m.scenario.steps} steps…" if self.late is not None else
+                       f"the same setting at {2 * m.scenario.steps} steps follows the late-time check")
         state = HeadlineState(
             m=m, verdict=judge(m.worst_peak_db, m.worst_probe, budget, self.late), complete=self.complete,
             late=self.late, late_note=self._late_note(), pinned=self.pinned, record=record_length(m.scenario),
