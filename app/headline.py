@@ -30,8 +30,8 @@ STYLE = """
 .ql-card.ql-pass .ql-value { color: #1a7f37; }
 .ql-card.ql-fail { border-color: #d1242f; background: #fff0f0; }
 .ql-card.ql-fail .ql-value { color: #b3141d; }
-.ql-present .ql-card .ql-value { font-size: 2.2em; }
-.ql-present .ql-card { min-width: 210px; max-width: none; height: 136px; }
+.ql-present .ql-card .ql-value { font-size: 2.0em; }
+.ql-present .ql-card { min-width: 172px; max-width: 320px; height: 132px; }
 .ql-present .ql-card .ql-label, .ql-present .ql-card .ql-sub { font-size: 1.1em; }
 .ql-warnings.ql-present, .ql-present .ql-run-note { font-size: 1.3em; }
 .ql-warnings { margin: 6px 0 0 0; padding: 4px 10px; border-left: 4px solid #E69F00; background: #fff8e6;
