@@ -52,6 +52,8 @@ DRAG_SETTLE_MS = 400  # a mid-drag result with nothing newer after this long get
 DRAG_COALESCE_MS = 25  # a key press sends value and value_throttled together: only the full run is made
 LATE_CHECK_REST_S = 0.8  # the late-time check starts once the controls have rested this long: while the
                          # user tunes, both cores stay free for the runs they are waiting for
+LENGTHEN_REST_S = 2.0  # ... and the run twice as long once they have rested this much longer: the
+                       # user has most likely stopped tuning, and it does not compete with the next change
 PROGRESS_AFTER_S = 1.0  # a run taking longer than this shows its progress, an estimate and Cancel
 PROGRESS_EVERY_S = 0.25  # ... refreshed at most this often
 OVERTAKEN_AFTER_S = 0.3  # a run a newer setting has overtaken stops once it has taken this long: a short
@@ -562,8 +564,16 @@ class QuietlayerPage:
         def still_wanted(*_):
             return generation == self.generation
 
+        def rested(seconds: float) -> bool:
+            """Wait while the setting stays; False as soon as a newer one arrives (its check is queued)."""
+            end = time.monotonic() + seconds
+            while still_wanted() and time.monotonic() < end:
+                time.sleep(0.05)
+            return still_wanted()
+
         def work():
-            time.sleep(LATE_CHECK_REST_S)  # the controls must rest first
+            if not rested(LATE_CHECK_REST_S):  # the controls must rest first
+                return
             while not backend.compiled() and still_wanted():  # 20,000 steps want the compiled engine
                 time.sleep(0.25)
             if not still_wanted():
@@ -571,7 +581,7 @@ class QuietlayerPage:
             try:
                 late = late_time_check(s, progress=still_wanted)
                 self._call_soon(self._deliver_late, late, generation)
-                if late.status != "diverged" and still_wanted():
+                if late.status != "diverged" and rested(LENGTHEN_REST_S):
                     worst = self.result.worst_peak_db if self.result is not None else float("nan")
                     longer = lengthened(s, worst, progress=still_wanted, budget=VISITOR_BUDGET)
                     self._call_soon(self._deliver_longer, longer, generation)
@@ -632,8 +642,7 @@ class QuietlayerPage:
             budget = float("nan")
         longer = self.longer if not isinstance(self.longer, str) else None
         longer_note = (self.longer if isinstance(self.longer, str) else
-                       f"checking the same setting at {2 * m.scenario.steps} steps…" if self.late is not None else
-                       f"the same setting at {2 * m.scenario.steps} steps follows the late-time check")
+                       f"the same setting at {2 * m.scenario.steps} steps runs once the controls rest")
         state = HeadlineState(
             m=m, verdict=judge(m.worst_peak_db, m.worst_probe, budget, self.late), complete=self.complete,
             late=self.late, late_note=self._late_note(), pinned=self.pinned, record=record_length(m.scenario),
