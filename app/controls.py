@@ -117,9 +117,17 @@ class Controls:
         }
         for widget, value in values.items():
             widget.value = value
-        self.w_cell.name = (self.labels[self.w_cell] if s.dx == s.dy else
-                            f"Cell size dx (dy = {format_length(s.dy)} as loaded; a new value sets both)")
         self.loaded, self.shown = s, values
+        self.refresh_labels()
+
+    def refresh_labels(self) -> None:
+        """The cell-size label names a loaded non-square cell's dy while the loaded dx is shown
+        (a cell size typed then sets dx = dy)."""
+        s = self.loaded
+        name = (f"Cell size dx (dy = {format_length(s.dy)} as loaded; a new value sets both)"
+                if s is not None and s.dx != s.dy and self.untouched(self.w_cell) else self.labels[self.w_cell])
+        if self.w_cell.name != name:
+            self.w_cell.name = name
 
     def untouched(self, *widgets) -> bool:
         """True while every one of `widgets` still shows the loaded scenario's value."""

@@ -413,6 +413,7 @@ class QuietlayerPage:
             return
         self.message.visible = False
         self.controls.mark_invalid(None)
+        self.controls.refresh_labels()
         self.controls.w_sigma_abs.object = self.controls.sigma_text(s)
         with self._batched():  # a dragged slider's spectrum follows the handle: it is not faded meanwhile
             self._mark_stale(FIGURES if full else self.stale | (set(FIGURES) - {"spectrum"}))

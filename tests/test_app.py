@@ -90,6 +90,12 @@ def test_a_loaded_file_keeps_its_own_values_until_a_control_moves(page):
         side = getattr(moved.boundary, name)
         assert side.kappa_max == 3.0 and side.sigma_max == 8.605 and side.order == 3.3 and side.cells == 12
     assert moved.boundary.top.kind == "wall" and moved.courant == 0.987 and moved.dy == demo.dx / 2
+    page.controls.w_cell.value = "2 mm"  # a new cell size sets dx = dy, and the label says so again
+    page.request()
+    assert page.scenario_from_controls().dy == 2e-3 and page.controls.w_cell.name == "Cell size (dx = dy)"
+    page.controls.w_cell.value = "1 mm"  # the loaded dx again: the loaded dy is measured and named
+    page.request()
+    assert page.scenario_from_controls().dy == demo.dx / 2 and "as loaded" in page.controls.w_cell.name
     page.controls.w_preset.value = "demo"  # back to a preset: the file's values are gone
     assert page.scenario_from_controls() == demo
     assert CUSTOM not in page.controls.w_preset.options
