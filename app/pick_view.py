@@ -17,7 +17,6 @@ from __future__ import annotations
 import math
 import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
 from typing import TYPE_CHECKING
 
 import panel as pn
@@ -33,6 +32,7 @@ from quietlayer.engine.search import (FREE_DEFAULT, MIN_BUDGET, PENALTY_DB, curr
 from quietlayer.engine.sweep import LocalPool, apply_point
 
 from . import plots
+from .background import BackgroundJob
 from .commands.tune import DEFAULT_TARGET_RUNS, DEFAULT_TUNE_RUNS
 from .confirm3d_view import _db
 from .figures import PALETTE, _font
@@ -86,19 +86,17 @@ def setting_lines(s, row: dict, score: str) -> list[str]:
     return lines + [", ".join(others)]
 
 
-class PickView:
+class PickView(BackgroundJob):
     """Form, progress, the two path figures and the result of one search."""
 
     def __init__(self, page: QuietlayerPage):
+        super().__init__("ql-pick")
         self.page = page
-        self.generation = 0
-        self.stop: threading.Event | None = None
         self.rows: list[dict] = []  # every run so far: engine rows with 'stage', 'run', 'cells', 'seq'
         self.outcome = None  # the last search's result (TuneResult or ThinnestResult)
         self.loadable = None  # (scenario, description) that "Load the result" puts into the controls
         self.request: dict = {}  # what the running or last search was asked
         self.following = {}  # field -> True while it follows its control (until the user edits it)
-        self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-pick")
         self._make_widgets()
         self._make_figures()
         self._layout()
@@ -266,9 +264,7 @@ class PickView:
             self.message.visible = True
             return
         self.message.visible = False
-        self._stop_running()
-        self.generation += 1
-        stop = self.stop = threading.Event()
+        stop = self._new_job()
         asked["bounds"] = {b.name: (b.lo, b.hi) for b in default_bounds(base, asked["free"])}
         self.request, self.rows, self.outcome, self.loadable = asked, [], None, None
         self.progress.max, self.progress.value = asked["runs"], 0
@@ -404,21 +400,9 @@ class PickView:
 
     def cancel(self, *_):
         """Stop after the runs in progress; the best so far is kept."""
-        if self.stop is not None:
-            self.stop.set()
+        if self._ask_stop():
             self.w_cancel.disabled = True
             self.status.object = "Cancelling: the runs in progress finish first…"
-
-    def _stop_running(self):
-        if self.stop is not None:
-            self.stop.set()
-            self.stop = None
-
-    def close(self):
-        """The session has ended: stop the work."""
-        self._stop_running()
-        self.generation += 1
-        self.pool.shutdown(wait=False, cancel_futures=True)
 
     # --- loading the result --------------------------------------------------------------
     def load_result(self, *_):

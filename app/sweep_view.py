@@ -8,7 +8,6 @@ import io
 import math
 import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from functools import partial
 from typing import TYPE_CHECKING
@@ -21,6 +20,7 @@ from quietlayer.engine.sweep import (LAYER_PARAMETERS, Axis, LocalPool, SweepTab
                                      parse_vary, run_sweep)
 
 from . import plots
+from .background import BackgroundJob
 from .units import format_length, snap
 
 if TYPE_CHECKING:
@@ -111,22 +111,20 @@ def sweep_axis(name: str, start: str, stop: str, count, which: str = "x") -> Axi
     return Axis(name, kept)
 
 
-class SweepView:
+class SweepView(BackgroundJob):
     """The sweep tab: two parameters, their ranges and a score; the sweep runs
     in its own worker thread on the scenario in the controls, and its map
     fills in as points come back.  A newer sweep makes the older one stop and
     its results are dropped (a generation counter, as for the live run)."""
 
     def __init__(self, page: QuietlayerPage):
+        super().__init__("ql-sweep")
         self.page = page
-        self.generation = 0
-        self.stop: threading.Event | None = None  # set to stop the running sweep
         self.table: SweepTable | None = None
         self.base: Scenario | None = None  # the scenario the table was measured on
         self.names = ("order", "sigma_ratio")  # the table's x and y parameters
         self.chosen: int | None = None  # index of the point loaded into the controls
         self.note = ""  # what the last click did, kept under the sweep's progress
-        self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="ql-sweep")
         self.pipe = hv.streams.Pipe(data=None)
         self.tap: hv.streams.Tap | None = None
         self.figure_key = None
@@ -238,9 +236,7 @@ class SweepView:
             self.message.visible = True
             return
         self.message.visible = False
-        self._stop_running()
-        self.generation += 1
-        stop = self.stop = threading.Event()
+        stop = self._new_job()
         points = grid_points(axes)
         table = SweepTable(parameters=[a.name for a in axes], points=points)  # the worker's own
         self.table = replace(table, rows={})  # the page only ever reads copies
@@ -302,21 +298,9 @@ class SweepView:
 
     def cancel(self, *_):
         """Stop after the points already running; those measured stay on the map."""
-        if self.stop is not None:
-            self.stop.set()
+        if self._ask_stop():
             self.w_cancel.disabled = True
             self._show_status("Cancelling: the points already running finish first…")
-
-    def _stop_running(self):
-        if self.stop is not None:
-            self.stop.set()
-            self.stop = None
-
-    def close(self):
-        """The session has ended: stop the work."""
-        self._stop_running()
-        self.generation += 1
-        self.pool.shutdown(wait=False, cancel_futures=True)
 
     def _summary(self, table: SweepTable, running: bool = False, done: int | None = None) -> str:
         x, y = (SWEEP_LABELS[n] for n in self.names)
