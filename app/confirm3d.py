@@ -40,7 +40,7 @@ def box_summary(box) -> dict:
 
 def check_3d(path, options) -> int:
     """Run the 3D confirmation of the scenario file at `path`; print text or JSON; exit code."""
-    from quietlayer.app.commands.common import EXIT_FAILED, EXIT_OK, console, late_time_json
+    from quietlayer.app.commands.common import EXIT_FAILED, EXIT_OK, console, late_time_json, score_lines
     from quietlayer.app.commands.common import db as _db, finite_or_none as _finite_or_none
     from quietlayer.app.commands.common import layer_lines as _layer_lines, load as _load
     from quietlayer.engine.confirm3d import confirm_3d
@@ -102,15 +102,8 @@ def check_3d(path, options) -> int:
     for name, _ in box.probes:
         print(f"  {name:<40}{_db(c.peak_db.get(name), 12)}{_db(band.get(name), 13)}")
     print()
-    print(f"  {'worst peak error':<20}{_db(c.worst_peak_db, 9)}  ({c.worst_probe})")
-    print(f"  {'global error':<20}{_db(c.global_db, 9)}  (interior, whole run)")
-    print(f"  {'band worst':<20}{_db(band.get(worst_band_probe), 9)}"
-          + (f"  ({worst_band_probe})" if worst_band_probe else ""))
-    if c.late is not None:
-        print(f"  {'late-time check':<20}{c.late.status:>9}  ({c.late.steps} steps: {c.late.message})")
-    else:
-        print(f"  {'late-time check':<20}{'skipped':>9}")
-    print(f"  {'budget':<20}{_db(options.budget, 9)}  (worst peak error)")
+    print("\n".join(score_lines(c.worst_peak_db, c.worst_probe, c.global_db, band.get(worst_band_probe),
+                                worst_band_probe, c.late, options.budget)))
     where = "cached" if c.reference_source != "computed" else f"{c.reference_s:.1f} s"
     print(f"  run time: reference {where}, test {c.test_s:.1f} s, late-time {c.late_s:.1f} s")
     print()

@@ -14,7 +14,7 @@ from quietlayer.engine.verdict import DEFAULT_BUDGET_DB, judge
 
 from ..units import format_frequency
 from .common import (EXIT_FAILED, EXIT_OK, BadInput, db, finite_or_none, late_time_json, layer_lines, load,
-                     problem_line, shorten)
+                     problem_line, score_lines, shorten)
 from .options import FORMATTER, SCENARIO_HELP, decibels, paragraph, ranged
 
 DEFAULT_LATE_STEPS = LATE_STEPS  # 2D late-time check unless --late-steps is given (--3d has its own)
@@ -107,15 +107,8 @@ def run(args) -> int:
         print(f"  {shorten(name, 17):<18}{db(value, 12)}{db(band.get(name), 13)}"
               f"{'' if angle is None else f'{angle:.0f} deg':>11}")
     print()
-    print(f"  {'worst peak error':<20}{db(m.worst_peak_db, 9)}  ({m.worst_probe})")
-    print(f"  {'global error':<20}{db(m.global_db, 9)}  (interior, whole run)")
-    print(f"  {'band worst':<20}{db(band.get(worst_band_probe), 9)}"
-          + (f"  ({worst_band_probe})" if worst_band_probe else ""))
-    if m.late is not None:
-        print(f"  {'late-time check':<20}{m.late.status:>9}  ({m.late.steps} steps: {m.late.message})")
-    else:
-        print(f"  {'late-time check':<20}{'skipped':>9}")
-    print(f"  {'budget':<20}{db(args.budget, 9)}  (worst peak error)")
+    print("\n".join(score_lines(m.worst_peak_db, m.worst_probe, m.global_db, band.get(worst_band_probe),
+                                worst_band_probe, m.late, args.budget)))
     print()
     for line in warnings:
         print(f"warning: {line}")

@@ -277,6 +277,17 @@ def finite_or_none(value):
     return value
 
 
+def score_lines(worst_db, worst_probe, global_db, band_db, band_probe, late, budget) -> list[str]:
+    """The summary block of `check` and `check --3d`: worst peak, global, band worst,
+    late-time check and budget, one line each."""
+    return [f"  {'worst peak error':<20}{db(worst_db, 9)}  ({worst_probe})",
+            f"  {'global error':<20}{db(global_db, 9)}  (interior, whole run)",
+            f"  {'band worst':<20}{db(band_db, 9)}" + (f"  ({band_probe})" if band_probe else ""),
+            (f"  {'late-time check':<20}{late.status:>9}  ({late.steps} steps: {late.message})" if late is not None
+             else f"  {'late-time check':<20}{'skipped':>9}"),
+            f"  {'budget':<20}{db(budget, 9)}  (worst peak error)"]
+
+
 def late_time_json(late) -> dict | None:
     """A late-time check as plain data for --json (None when it was not run)."""
     return None if late is None else {
