@@ -88,8 +88,6 @@ def report_html(m, late=None) -> str:
     live = LiveFigures()
     live.show(m, None, best_frame(m))
     fig = live.figures
-    for key in ("spectrum", "angle", "error"):
-        fig[key].title.text = fig[key].title.text.replace(", dotted: A)", ")").replace(" (dotted: A)", "")
     shown = {"total": fig["total"], "reflected": fig["reflected"], "spectrum": fig["spectrum"],
              "angle": fig["angle"], "error": fig["error"], **{f"profile{k}": fig[f"profile{k}"] for k in range(3)}}
     script, divs = components(shown)
